@@ -1,0 +1,92 @@
+"""The ``discover`` command."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+from .exceptions import DiscoverError
+
+EXAMPLES = """\
+examples:
+  discover run configs/ship.toml                 identify the ship-steering demo
+  discover run configs/bioreactor.toml --out out/bio --force
+  discover simulate out/ship/model.json data_demo/ship/heldout_sine.csv
+
+A failure caused by the input (config, data, model file) prints one line and exits
+with status 2 (config), 3 (data), 4 (expression), 5 (model file) or 6 (output
+folder); --debug shows the traceback.
+"""
+
+
+def build_parser():
+    parser = argparse.ArgumentParser(
+        prog="discover",
+        description="Identify sparse dynamical models dx/dt = f(x, u) with input terms from logged runs.",
+        epilog=EXAMPLES,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    parser.add_argument("--debug", action="store_true", help="show tracebacks of input errors")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    run = sub.add_parser("run", help="run the pipeline from a TOML config",
+                         description="Run the pipeline from a TOML config and write the output folder.")
+    run.add_argument("config", help="path to the TOML config")
+    run.add_argument("--out", help="output folder (default: [output].dir, else out/<config name>)")
+    run.add_argument("--force", action="store_true", help="replace an existing output folder")
+    sim = sub.add_parser("simulate", help="simulate a saved model on a run's recorded input",
+                         description="Simulate model.json from the first sample of a run file, "
+                                     "with that run's recorded input, and print the fit.")
+    sim.add_argument("model", help="path to model.json")
+    sim.add_argument("data", help="CSV or Parquet run with the model's state and input columns")
+    sim.add_argument("--time", default="t", help="name of the time column (default: t)")
+    sim.add_argument("--interpolation", default="linear", choices=("linear", "zoh"))
+    return parser
+
+
+def _run(args):
+    from .pipeline import run, write_outputs
+    from .report import summary
+
+    result = run(args.config, progress=True)
+    target = write_outputs(result, args.out, force=args.force)
+    print(summary(result))
+    print(f"Output written to {target}")
+
+
+def _simulate(args):
+    from pathlib import Path
+
+    from .data import load_run
+    from .model import load_model
+    from .simulate import fit_metrics
+
+    model = load_model(args.model)
+    run = load_run(Path(args.data), time=args.time, states=model.state_names, inputs=model.input_names,
+                   rename={}, missing="refuse", max_gap=1)
+    sim = model.simulate(run.t, run.x[0], run.u, interpolation=args.interpolation)
+    if sim.diverged:
+        print(f"{run.name}: diverged ({sim.message})")
+        return
+    metrics = fit_metrics(run.x, sim.x)
+    for state, fit, rmse in zip(model.state_names, metrics["fit_percent"], metrics["rmse"]):
+        print(f"{run.name}: {state} fit {fit:.1f} %, RMSE {rmse:.4g}")
+
+
+def main(argv=None):
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        {"run": _run, "simulate": _simulate}[args.command](args)
+    except DiscoverError as err:
+        if args.debug:
+            raise
+        print(f"discover: error: {err}", file=sys.stderr)
+        return err.exit_code
+    except KeyboardInterrupt:
+        print("discover: interrupted; no output folder was written.", file=sys.stderr)
+        return 130
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,359 @@
+"""Read and validate a run's TOML config; every default lives in :data:`SCHEMA`.
+
+Validation happens once, here, before any computation: an unknown key, a wrong
+type or a value out of range raises :class:`~discover.exceptions.ConfigError`
+whose message names the key path, what was given and what is accepted, e.g.::
+
+    configs/ship.toml: [derivatives].window must be an odd int >= 3. Got 10.
+
+Paths inside a config file are relative to the folder of that file.
+"""
+
+from __future__ import annotations
+
+import difflib
+import inspect
+import math
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+from .derivatives import DERIVATIVE_METHODS, default_trim
+from .exceptions import ConfigError
+
+SIMULATION_METHODS = ("LSODA", "RK45", "DOP853", "Radau", "BDF", "RK23")
+
+
+@dataclass(frozen=True)
+class Key:
+    """One config key: its kind, default and limits.
+
+    kind is one of "int", "float", "bool", "str", "str_list", "float_list", "table".
+    A default of ``REQUIRED`` makes the key mandatory; ``None`` means "unset".
+    """
+
+    kind: str
+    default: object
+    choices: tuple = ()
+    minimum: float | None = None
+    maximum: float | None = None
+    nullable: bool = False
+    also: tuple = ()  # extra accepted string values for numeric keys, e.g. ("cv",)
+    odd: bool = False
+
+
+REQUIRED = object()
+
+SCHEMA = {
+    "": {"seed": Key("int", 0, minimum=0)},
+    "data": {
+        "files": Key("str_list", REQUIRED),
+        "time": Key("str", "t"),
+        "states": Key("str_list", REQUIRED),
+        "inputs": Key("str_list", []),
+        "rename": Key("table", {}),
+        "held_out": Key("str_list", []),
+        "held_out_count": Key("int", 1, minimum=0),
+        "missing": Key("str", "refuse", choices=("refuse", "drop", "interpolate")),
+        "max_gap": Key("int", 3, minimum=1),
+    },
+    "derivatives": {
+        "method": Key("str", "savitzky_golay", choices=tuple(DERIVATIVE_METHODS)),
+        "trim": Key("int", None, minimum=0, nullable=True),
+        # Further keys are the keyword-only options of the chosen method (see below).
+    },
+    "terms": {
+        "degree": Key("int", 2, minimum=0, maximum=6),
+        "variables": Key("str_list", None, nullable=True),
+        "input_degree": Key("int", None, minimum=0, nullable=True),
+        "state_input_products": Key("bool", True),
+        "constant": Key("bool", True),
+        "trig_variables": Key("str_list", []),
+        "trig_frequencies": Key("float_list", [1.0], minimum=0.0),
+        "trig_input_products": Key("bool", False),
+        "custom": Key("str_list", []),
+    },
+    "selection": {
+        "threshold": Key("float", "cv", minimum=0.0, also=("cv",)),
+        "thresholds": Key("float_list", None, minimum=0.0, nullable=True),
+        "threshold_min": Key("float", 1e-3, minimum=0.0),
+        "threshold_max": Key("float", 1.0, minimum=0.0),
+        "threshold_count": Key("int", 20, minimum=2, maximum=500),
+        "ridge": Key("float", 1e-5, minimum=0.0),
+        "max_iter": Key("int", 20, minimum=1),
+        "cv_folds": Key("int", 5, minimum=2, maximum=50),
+        "cv_split": Key("str", "auto", choices=("auto", "runs", "blocks")),
+        "cv_rule": Key("str", "one_se", choices=("one_se", "min")),
+    },
+    "simulation": {
+        "input_interpolation": Key("str", "auto", choices=("auto", "linear", "zoh")),
+        "method": Key("str", "LSODA", choices=SIMULATION_METHODS),
+        "rtol": Key("float", 1e-6, minimum=1e-14, maximum=1.0),
+        "atol": Key("float", 1e-9, minimum=0.0),
+        "divergence_factor": Key("float", 100.0, minimum=1.0),
+    },
+    "output": {
+        "dir": Key("str", None, nullable=True),
+        "figures": Key("bool", True),
+    },
+}
+
+
+def method_options(method):
+    """Keyword-only options of a derivative method, with their defaults."""
+    signature = inspect.signature(DERIVATIVE_METHODS[method])
+    return {
+        name: p.default
+        for name, p in signature.parameters.items()
+        if p.kind is inspect.Parameter.KEYWORD_ONLY
+    }
+
+
+def load_config(source):
+    """Read a config from a TOML path or a dict, validate it and fill in defaults.
+
+    Returns
+    -------
+    dict
+        The effective config: every section and key, with ``"_source"`` (where it
+        came from, for messages) and ``"_base"`` (folder that relative paths start from).
+    """
+    if isinstance(source, dict):
+        raw, where, base = source, "config", Path.cwd()
+    else:
+        path = Path(source)
+        where, base = str(path), path.resolve().parent
+        try:
+            with open(path, "rb") as handle:
+                raw = tomllib.load(handle)
+        except FileNotFoundError:
+            raise ConfigError(f"{path}: config file not found.") from None
+        except OSError as err:
+            raise ConfigError(f"{path}: cannot read the config file ({err.strerror}).") from None
+        except tomllib.TOMLDecodeError as err:
+            raise ConfigError(f"{path}: not valid TOML: {err}.") from None
+    config = validate(raw, where)
+    config["_source"], config["_base"] = where, str(base)
+    return config
+
+
+def validate(raw, where="config"):
+    """Validate a raw config mapping; return the effective config (a new dict)."""
+    if not isinstance(raw, dict):
+        raise ConfigError(f"{where}: a config must be a table of sections. Got {type(raw).__name__}.")
+    sections = [name for name in SCHEMA if name]
+    top_keys = list(SCHEMA[""])
+    for name, value in raw.items():
+        if name in SCHEMA[""]:
+            continue
+        if name not in SCHEMA:
+            _unknown(where, "", name, sections + top_keys)
+        if not isinstance(value, dict):
+            raise ConfigError(f"{where}: [{name}] must be a table (a section). Got {value!r}.")
+    effective = {}
+    for key, spec in SCHEMA[""].items():
+        effective[key] = _check_value(where, "", key, spec, raw.get(key, spec.default))
+    for name in sections:
+        table = dict(raw.get(name, {}))
+        schema = dict(SCHEMA[name])
+        if name == "derivatives":
+            schema.update(_derivative_keys(where, table))
+        for key in table:
+            if key not in schema:
+                _unknown(where, name, key, list(schema))
+        effective[name] = {}
+        for key, spec in schema.items():
+            value = table.get(key, spec.default)
+            if value is REQUIRED:
+                raise ConfigError(f"{where}: [{name}].{key} is required.")
+            effective[name][key] = _check_value(where, name, key, spec, value)
+    _check_relations(where, effective)
+    return effective
+
+
+def _derivative_keys(where, table):
+    method = table.get("method", SCHEMA["derivatives"]["method"].default)
+    if method not in DERIVATIVE_METHODS:
+        _check_value(where, "derivatives", "method", SCHEMA["derivatives"]["method"], method)
+    keys = {}
+    for option, default in method_options(method).items():
+        if isinstance(default, bool):
+            keys[option] = Key("bool", default)
+        elif isinstance(default, int):
+            keys[option] = Key("int", default, minimum=0, odd=(option == "window"))
+        else:
+            keys[option] = Key("float", default, minimum=0.0, nullable=True)
+    return keys
+
+
+def _unknown(where, section, key, valid):
+    path = f"[{section}].{key}" if section else key
+    close = difflib.get_close_matches(key, valid, n=1)
+    hint = f" Did you mean {close[0]!r}?" if close else ""
+    raise ConfigError(
+        f"{where}: unknown key {path}.{hint} Valid keys here: {', '.join(sorted(valid))}."
+    )
+
+
+def _describe(spec):
+    words = {
+        "int": "an int",
+        "float": "a number",
+        "bool": "true or false",
+        "str": "a string",
+        "str_list": "a list of strings",
+        "float_list": "a list of numbers",
+        "table": "a table of name = \"column\" pairs",
+    }[spec.kind]
+    if spec.odd:
+        words = "an odd int"
+    if spec.choices:
+        words = "one of " + ", ".join(repr(c) for c in spec.choices)
+    if spec.minimum is not None:
+        words += f" >= {spec.minimum:g}"
+    if spec.maximum is not None:
+        words += f" and <= {spec.maximum:g}"
+    if spec.also:
+        words += " or " + " or ".join(repr(a) for a in spec.also)
+    return words
+
+
+def _check_value(where, section, key, spec, value):
+    path = f"[{section}].{key}" if section else key
+
+    def fail():
+        raise ConfigError(f"{where}: {path} must be {_describe(spec)}. Got {value!r}.")
+
+    if value is None:
+        if spec.nullable or spec.default is None:
+            return None
+        fail()
+    if spec.also and value in spec.also:
+        return value
+    kind = spec.kind
+    if kind == "bool":
+        if not isinstance(value, bool):
+            fail()
+        return value
+    if kind == "str":
+        if not isinstance(value, str) or (spec.choices and value not in spec.choices):
+            fail()
+        return value
+    if kind == "table":
+        if not isinstance(value, dict) or not all(isinstance(v, str) for v in value.values()):
+            fail()
+        return dict(value)
+    if kind == "str_list":
+        if isinstance(value, str):
+            value = [value]
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            fail()
+        return list(value)
+    if kind == "float_list":
+        if not isinstance(value, list) or not all(_is_number(v) for v in value):
+            fail()
+        if spec.minimum is not None and any(v < spec.minimum for v in value):
+            fail()
+        return [float(v) for v in value]
+    if kind == "int":
+        if isinstance(value, bool) or not isinstance(value, int) or (spec.odd and value % 2 == 0):
+            fail()
+    elif not _is_number(value):  # float
+        fail()
+    if spec.minimum is not None and value < spec.minimum:
+        fail()
+    if spec.maximum is not None and value > spec.maximum:
+        fail()
+    return value if kind == "int" else float(value)
+
+
+def _is_number(value):
+    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+
+
+def _check_relations(where, config):
+    """Checks that involve several keys."""
+    data, sel, terms = config["data"], config["selection"], config["terms"]
+    if not data["states"]:
+        raise ConfigError(f"{where}: [data].states must name at least one state column.")
+    both = set(data["states"]) & set(data["inputs"])
+    if both:
+        raise ConfigError(
+            f"{where}: {sorted(both)} appear in both [data].states and [data].inputs; "
+            "a column is either a state or an input."
+        )
+    for key, names in (("states", data["states"]), ("inputs", data["inputs"])):
+        repeated = sorted({n for n in names if names.count(n) > 1})
+        if repeated:
+            raise ConfigError(f"{where}: [data].{key} lists {repeated} more than once.")
+    if sel["threshold_min"] >= sel["threshold_max"]:
+        raise ConfigError(
+            f"{where}: [selection].threshold_min must be below threshold_max. "
+            f"Got {sel['threshold_min']} and {sel['threshold_max']}."
+        )
+    if sel["thresholds"] is not None and len(sel["thresholds"]) < 1:
+        raise ConfigError(f"{where}: [selection].thresholds must list at least one threshold.")
+    deriv = config["derivatives"]
+    try:
+        default_trim(deriv["method"], {k: v for k, v in deriv.items() if k not in ("method", "trim")})
+    except ConfigError as err:
+        raise ConfigError(f"{where}: {err}") from None
+    known = set(data["states"]) | set(data["inputs"])
+    for key in ("variables", "trig_variables"):
+        for name in terms[key] or []:
+            if name not in known:
+                close = difflib.get_close_matches(name, sorted(known), n=1)
+                hint = f" Did you mean {close[0]!r}?" if close else ""
+                raise ConfigError(
+                    f"{where}: [terms].{key} names {name!r}, which is neither a state nor an "
+                    f"input.{hint} States and inputs: {', '.join(sorted(known))}."
+                )
+
+
+def threshold_grid(selection):
+    """The thresholds to cross-validate, ascending."""
+    import numpy as np
+
+    if selection["thresholds"] is not None:
+        return np.unique(np.asarray(selection["thresholds"], dtype=float))
+    return np.geomspace(
+        selection["threshold_min"], selection["threshold_max"], selection["threshold_count"]
+    )
+
+
+def to_toml(config):
+    """Write the effective config as TOML (the subset of TOML this schema uses)."""
+    lines = []
+    for key, value in config.items():
+        if not key.startswith("_") and not isinstance(value, dict) and value is not None:
+            lines.append(f"{key} = {_toml_value(value)}")
+    for section, table in config.items():
+        if section.startswith("_") or not isinstance(table, dict):
+            continue
+        lines.append(f"\n[{section}]")
+        for key, value in table.items():
+            if value is None:
+                lines.append(f"# {key} is unset")
+            else:
+                lines.append(f"{key} = {_toml_value(value)}")
+    return "\n".join(lines) + "\n"
+
+
+def _toml_value(value):
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, (int, float)):
+        return repr(value)
+    if isinstance(value, str):
+        escaped = value.replace("\\", "\\\\").replace('"', '\\"')
+        return f'"{escaped}"'
+    if isinstance(value, list):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    if isinstance(value, dict):
+        return "{" + ", ".join(f"{_toml_value(k)} = {_toml_value(v)}" for k, v in value.items()) + "}"
+    raise TypeError(value)

@@ -1,0 +1,244 @@
+"""Load logged runs (CSV, Parquet), check them, and split training from held-out runs.
+
+Every check names the file, the column and the row (1-based data row; the CSV line
+is one more because of the header) and says what would be accepted.
+"""
+
+from __future__ import annotations
+
+import difflib
+import glob
+import keyword
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .exceptions import DataError
+from .expressions import FUNCTIONS
+
+READERS = {".csv": "csv", ".txt": "csv", ".parquet": "parquet", ".pq": "parquet"}
+
+
+@dataclass(frozen=True)
+class Run:
+    """One logged run.
+
+    Attributes
+    ----------
+    name : str
+        The file's stem; held-out runs are named by it.
+    t : ndarray of shape (n_samples,)
+    x : ndarray of shape (n_samples, n_states)
+    u : ndarray of shape (n_samples, n_inputs)
+    source : str
+        The file it came from.
+    touched : int
+        Samples dropped or interpolated by gap handling.
+    """
+
+    name: str
+    t: np.ndarray
+    x: np.ndarray
+    u: np.ndarray
+    source: str = ""
+    touched: int = 0
+
+
+@dataclass(frozen=True)
+class Dataset:
+    """Runs that share state and input names."""
+
+    state_names: tuple
+    input_names: tuple
+    runs: tuple = field(default_factory=tuple)
+
+    @property
+    def n_samples(self):
+        return sum(len(run.t) for run in self.runs)
+
+
+def resolve_files(patterns, base, where):
+    """Expand glob patterns (relative to ``base``) into a sorted list of files."""
+    files = []
+    for pattern in patterns:
+        full = pattern if Path(pattern).is_absolute() else str(Path(base) / pattern)
+        matches = sorted(glob.glob(full))
+        if not matches:
+            raise DataError(f"{where}: [data].files pattern {pattern!r} matches no file (looked in {base}).")
+        files.extend(m for m in matches if m not in files)
+    return [Path(f) for f in files]
+
+
+def read_table(path):
+    """Read one file into a DataFrame of raw cells; sniff obvious format problems."""
+    kind = READERS.get(path.suffix.lower())
+    if kind is None:
+        raise DataError(f"{path}: unsupported file type {path.suffix!r}. Accepted: .csv, .txt, .parquet, .pq.")
+    try:
+        if kind == "parquet":
+            return pd.read_parquet(path)
+        frame = pd.read_csv(path, skipinitialspace=True)
+    except FileNotFoundError:
+        raise DataError(f"{path}: file not found.") from None
+    except (OSError, UnicodeDecodeError, ValueError, pd.errors.ParserError, ImportError) as err:
+        raise DataError(f"{path}: cannot read the file ({type(err).__name__}: {err}).") from None
+    if frame.shape[1] == 1 and frame.columns[0].count(";") + frame.columns[0].count("\t") > 0:
+        raise DataError(f"{path}: could not split the columns; use ',' as the delimiter.")
+    return frame
+
+
+def check_names(names, where):
+    """Names become variables of term expressions: they must be plain identifiers."""
+    for name in names:
+        if not name.isidentifier() or keyword.iskeyword(name) or name in FUNCTIONS:
+            raise DataError(
+                f"{where}: column {name!r} cannot be used in term expressions (it must be a "
+                "Python identifier and not a function name). Map it to a new name in "
+                f"[data].rename, e.g. rename = {{ my_name = {name!r} }}."
+            )
+
+
+def _column(frame, name, path):
+    if name not in frame.columns:
+        close = difflib.get_close_matches(name, [str(c) for c in frame.columns], n=1)
+        hint = f" Did you mean {close[0]!r}?" if close else ""
+        raise DataError(
+            f"{path}: missing column {name!r}.{hint} Columns in the file: "
+            f"{', '.join(str(c) for c in frame.columns)}."
+        )
+    raw = frame[name]
+    if isinstance(raw, pd.DataFrame):
+        raise DataError(f"{path}: column {name!r} appears more than once.")
+    values = pd.to_numeric(raw, errors="coerce")
+    bad = values.isna() & raw.notna()
+    if bad.any():
+        row = int(np.flatnonzero(bad.to_numpy())[0])
+        raise DataError(
+            f"{path}: column {name!r} has a non-numeric value {raw.iloc[row]!r} at row {row + 1} "
+            f"(line {row + 2} of a CSV). Accepted: numbers with '.' as the decimal mark."
+        )
+    return values.to_numpy(dtype=float)
+
+
+def _gaps(missing):
+    """Lengths of the runs of consecutive True values."""
+    padded = np.concatenate([[False], missing, [False]]).astype(int)
+    edges = np.diff(padded)
+    return np.flatnonzero(edges == -1) - np.flatnonzero(edges == 1)
+
+
+def handle_missing(path, columns, names, t, *, missing, max_gap):
+    """Refuse, drop or interpolate NaN/inf samples; return the arrays and how many were touched."""
+    bad = ~np.isfinite(columns)
+    if not bad.any():
+        return columns, t, 0
+    j = int(np.flatnonzero(bad.any(axis=0))[0])
+    first = int(np.flatnonzero(bad[:, j])[0])
+    count = int(bad[:, j].sum())
+    if missing == "refuse":
+        raise DataError(
+            f"{path}: column {names[j]!r} has {count} NaN or infinite values (first at row "
+            f"{first + 1}). Drop or interpolate them first, or set [data].missing = "
+            "'drop' or 'interpolate' to handle gaps of up to [data].max_gap samples."
+        )
+    rows = bad.any(axis=1)
+    longest = _gaps(rows).max()
+    if longest > max_gap:
+        raise DataError(
+            f"{path}: a gap of {longest} consecutive samples with NaN/inf is longer than "
+            f"[data].max_gap = {max_gap}. Split the run at the gap or raise max_gap."
+        )
+    if rows[0] or rows[-1]:
+        missing = "drop"  # nothing to interpolate from at the ends of a run
+    if missing == "drop":
+        return columns[~rows], t[~rows], int(rows.sum())
+    filled = columns.copy()
+    for k in range(columns.shape[1]):
+        ok = ~bad[:, k]
+        filled[~ok, k] = np.interp(t[~ok], t[ok], columns[ok, k])
+    return filled, t, int(bad.any(axis=1).sum())
+
+
+def load_run(path, *, time, states, inputs, rename, missing, max_gap):
+    """Read and check one run."""
+    frame = read_table(path)
+    frame.columns = [str(c).strip() for c in frame.columns]
+    duplicated = sorted({c for c in frame.columns if list(frame.columns).count(c) > 1})
+    if duplicated:
+        raise DataError(f"{path}: duplicate column names {duplicated}. Each column needs its own name.")
+    reverse = {column: name for name, column in rename.items()}
+    frame = frame.rename(columns=reverse)
+    t = _column(frame, time, path)
+    names = list(states) + list(inputs)
+    columns = np.column_stack([_column(frame, name, path) for name in names]) if names else np.empty((len(t), 0))
+    if not np.isfinite(t).all():
+        row = int(np.flatnonzero(~np.isfinite(t))[0])
+        raise DataError(f"{path}: time column {time!r} has a missing or infinite value at row {row + 1}.")
+    columns, t, touched = handle_missing(path, columns, names, t, missing=missing, max_gap=max_gap)
+    steps = np.diff(t)
+    if (steps <= 0).any():
+        row = int(np.flatnonzero(steps <= 0)[0]) + 1
+        what = "repeats" if steps[row - 1] == 0 else "goes backwards"
+        raise DataError(
+            f"{path}: time column {time!r} {what} at row {row + 1} ({t[row - 1]!r} then {t[row]!r}). "
+            "Time must increase strictly; remove duplicated samples or split the run."
+        )
+    n_states = len(states)
+    return Run(
+        name=path.stem,
+        t=t,
+        x=np.ascontiguousarray(columns[:, :n_states]),
+        u=np.ascontiguousarray(columns[:, n_states:]),
+        source=str(path),
+        touched=touched,
+    )
+
+
+def split_held_out(runs, held_out, held_out_count, seed, where):
+    """Split runs into training and held-out by name, or by a seeded draw."""
+    names = [run.name for run in runs]
+    if held_out:
+        unknown = [name for name in held_out if name not in names]
+        if unknown:
+            raise DataError(
+                f"{where}: [data].held_out names {unknown}, which are not among the runs: "
+                f"{', '.join(names)}."
+            )
+        chosen = set(held_out)
+    else:
+        count = min(held_out_count, len(runs) - 1)
+        rng = np.random.default_rng(seed)
+        chosen = {names[i] for i in rng.choice(len(runs), size=count, replace=False)} if count > 0 else set()
+    train = tuple(run for run in runs if run.name not in chosen)
+    test = tuple(run for run in runs if run.name in chosen)
+    if not train:
+        raise DataError(f"{where}: every run is held out; at least one run must remain for fitting.")
+    return train, test
+
+
+def load_dataset(config):
+    """Load the runs a config names; return ``(training, held_out)`` Datasets."""
+    data, where = config["data"], config["_source"]
+    states, inputs = tuple(data["states"]), tuple(data["inputs"])
+    check_names((data["time"],) + states + inputs, where)
+    paths = resolve_files(data["files"], config["_base"], where)
+    runs = [
+        load_run(
+            path,
+            time=data["time"],
+            states=states,
+            inputs=inputs,
+            rename=data["rename"],
+            missing=data["missing"],
+            max_gap=data["max_gap"],
+        )
+        for path in paths
+    ]
+    names = [run.name for run in runs]
+    repeated = sorted({n for n in names if names.count(n) > 1})
+    if repeated:
+        raise DataError(f"{where}: several files share the run name(s) {repeated}; rename the files.")
+    train, test = split_held_out(runs, data["held_out"], data["held_out_count"], config["seed"], where)
+    return Dataset(states, inputs, train), Dataset(states, inputs, test)

@@ -1,0 +1,180 @@
+"""The identified model: evaluate f(x, u), simulate, save to and load from ``model.json``.
+
+The file format ``discover-model/1`` is the contract of DESIGN.md: states, inputs,
+and one equation per state whose terms carry an expression over the column names,
+a coefficient in the data's units and an inclusion probability. Expressions are
+read back through the whitelist parser; nothing in a model file is executed.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from . import simulate as _simulate
+from .exceptions import DiscoverError, ModelFileError
+from .expressions import parse_expression
+from .terms import columns_of
+
+FORMAT = "discover-model/1"
+
+
+@dataclass(frozen=True)
+class Model:
+    """dx/dt = Θ(x, u) Ξ over a set of named terms.
+
+    Attributes
+    ----------
+    state_names, input_names : tuple of str
+    terms : tuple of str
+        Expression of each term (row of ``coef``).
+    coef : ndarray of shape (n_terms, n_states)
+        Coefficients in the data's units; zero where a term is not in an equation.
+    term_stats : dict of str -> ndarray of shape (n_terms, n_states)
+        Per-term figures written beside each coefficient (e.g. inclusion_probability).
+    info : dict
+        Further top-level fields of the model file (threshold, derivative method...).
+    """
+
+    state_names: tuple
+    input_names: tuple
+    terms: tuple
+    coef: np.ndarray
+    term_stats: dict = field(default_factory=dict)
+    info: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        known = tuple(self.state_names) + tuple(self.input_names)
+        used = np.flatnonzero(np.any(self.coef != 0, axis=1))
+        parsed = [parse_expression(self.terms[i], known, where=f"model term {self.terms[i]!r}") for i in used]
+        object.__setattr__(self, "_used", used)
+        object.__setattr__(self, "_parsed", parsed)
+        object.__setattr__(self, "_coef_used", np.ascontiguousarray(self.coef[used]))
+
+    @property
+    def support(self):
+        """Bool ndarray of shape (n_terms, n_states): which terms each equation keeps."""
+        return self.coef != 0
+
+    def rhs(self, x, u=None):
+        """dx/dt at x of shape (n_states,) or (n_samples, n_states); u likewise for inputs."""
+        x = np.asarray(x, dtype=float)
+        single = x.ndim == 1
+        x2 = x.reshape(1, -1) if single else x
+        if u is None:
+            u = np.empty((len(x2), 0))
+        u2 = np.asarray(u, dtype=float).reshape(len(x2), -1)
+        columns = columns_of(self.state_names, self.input_names, x2, u2)
+        theta = np.empty((len(x2), len(self._parsed)))
+        for j, expression in enumerate(self._parsed):
+            theta[:, j] = expression.evaluate(columns)
+        dx = theta @ self._coef_used
+        return dx[0] if single else dx
+
+    def simulate(self, t, x0, u=None, *, interpolation="linear", method="LSODA", rtol=1e-6,
+                 atol=1e-9, limits=None):
+        """Simulate from x0 over times t with input u (samples at t, or a callable of t).
+
+        Returns a :class:`discover.simulate.Simulation`; a diverging run is reported
+        through its ``diverged`` flag, not raised.
+        """
+        t = np.asarray(t, dtype=float)
+        if u is None:
+            u = np.empty((len(t), 0))
+        return _simulate.simulate(
+            self.rhs, t, x0, u, interpolation=interpolation, method=method, rtol=rtol, atol=atol,
+            limits=limits, state_names=list(self.state_names),
+        )
+
+    def equations(self):
+        """``[(state, [(expr, coefficient, {stat: value}), ...]), ...]`` for the kept terms."""
+        result = []
+        for i, state in enumerate(self.state_names):
+            kept = []
+            for j in np.flatnonzero(self.coef[:, i]):
+                stats = {name: float(values[j, i]) for name, values in self.term_stats.items()}
+                kept.append((self.terms[j], float(self.coef[j, i]), stats))
+            result.append((state, kept))
+        return result
+
+    def to_dict(self):
+        equations = []
+        for state, kept in self.equations():
+            rows = []
+            for expr, coefficient, stats in kept:
+                row = {"expr": expr, "coefficient": coefficient}
+                row["inclusion_probability"] = stats.pop("inclusion_probability", None)
+                row.update(stats)
+                rows.append(row)
+            equations.append({"state": state, "terms": rows})
+        return {
+            "format": FORMAT,
+            "states": list(self.state_names),
+            "inputs": list(self.input_names),
+            "equations": equations,
+            **self.info,
+        }
+
+    def save(self, path):
+        Path(path).write_text(json.dumps(self.to_dict(), indent=2, allow_nan=False) + "\n")
+
+
+def _fail(path, why):
+    raise ModelFileError(f"{path}: {why}")
+
+
+def from_dict(document, where="model"):
+    """Build a :class:`Model` from a parsed ``model.json`` document."""
+    if not isinstance(document, dict) or document.get("format") != FORMAT:
+        got = document.get("format") if isinstance(document, dict) else type(document).__name__
+        _fail(where, f"not a {FORMAT} model file (format is {got!r}).")
+    states, inputs = document.get("states"), document.get("inputs", [])
+    if not isinstance(states, list) or not all(isinstance(s, str) for s in states) or not states:
+        _fail(where, "'states' must be a non-empty list of names.")
+    if not isinstance(inputs, list) or not all(isinstance(s, str) for s in inputs):
+        _fail(where, "'inputs' must be a list of names.")
+    equations = document.get("equations")
+    if not isinstance(equations, list):
+        _fail(where, "'equations' must be a list with one entry per state.")
+    terms, entries = [], {}
+    for k, equation in enumerate(equations):
+        state = equation.get("state") if isinstance(equation, dict) else None
+        if state not in states:
+            _fail(where, f"equations[{k}].state must be one of {states}. Got {state!r}.")
+        for m, term in enumerate(equation.get("terms", [])):
+            expr, coefficient = term.get("expr"), term.get("coefficient")
+            if not isinstance(expr, str) or not isinstance(coefficient, (int, float)):
+                _fail(where, f"equations[{k}].terms[{m}] needs a string 'expr' and a number 'coefficient'.")
+            if expr not in terms:
+                terms.append(expr)
+            entries[(expr, state)] = term
+    coef = np.zeros((len(terms), len(states)))
+    stat_names = sorted({key for term in entries.values() for key, value in term.items()
+                         if key not in ("expr", "coefficient") and isinstance(value, (int, float))})
+    stats = {name: np.full((len(terms), len(states)), np.nan) for name in stat_names}
+    for (expr, state), term in entries.items():
+        j, i = terms.index(expr), states.index(state)
+        coef[j, i] = float(term["coefficient"])
+        for name in stat_names:
+            if isinstance(term.get(name), (int, float)):
+                stats[name][j, i] = float(term[name])
+    info = {k: v for k, v in document.items() if k not in ("format", "states", "inputs", "equations")}
+    try:
+        return Model(tuple(states), tuple(inputs), tuple(terms), coef, stats, info)
+    except DiscoverError as err:
+        _fail(where, str(err))
+
+
+def load_model(path):
+    """Read a ``model.json`` back into a :class:`Model`."""
+    path = Path(path)
+    try:
+        document = json.loads(path.read_text())
+    except FileNotFoundError:
+        _fail(path, "model file not found.")
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as err:
+        _fail(path, f"cannot read the model file ({err}).")
+    return from_dict(document, where=str(path))

@@ -1,0 +1,366 @@
+"""Chain the stages: config → data → derivatives → terms → selection → validation → outputs.
+
+:func:`run` is the Python entry point (``discover.run``). It returns a
+:class:`Result`; :func:`write_outputs` writes the output folder into a temporary
+folder beside the target and renames it into place, so that a failed run never
+leaves half a result.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import platform
+import shutil
+import tempfile
+from dataclasses import dataclass, field
+from importlib import metadata
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from . import report
+from .config import load_config, threshold_grid, to_toml
+from .data import load_dataset
+from .derivatives import DERIVATIVE_METHODS, default_trim, min_samples
+from .exceptions import DataError, OutputError
+from .model import Model
+from .selection import (
+    ILL_CONDITIONED,
+    COND_LIMIT,
+    block_grams,
+    condition_numbers,
+    cross_validate,
+    fit_scaled,
+)
+from .simulate import fit_metrics, guess_interpolation
+from .terms import build_library
+
+SHORT_RUN = 50  # fewer usable samples than this in a run earns a warning
+
+
+@dataclass(frozen=True)
+class Smoothed:
+    """One run after the derivative stage, ends already trimmed."""
+
+    name: str
+    t: np.ndarray
+    x: np.ndarray  # smoothed states
+    x_dot: np.ndarray
+    u: np.ndarray
+    x_raw: np.ndarray
+
+
+@dataclass
+class Result:
+    """Everything a run produced; reports and writers read it and compute nothing new."""
+
+    config: dict
+    model: Model
+    library_terms: list
+    cv: object
+    training: object
+    held_out: object
+    smoothed: list
+    validation: list = field(default_factory=list)
+    warnings: list = field(default_factory=list)
+    output_dir: Path | None = None
+
+    def validation_table(self):
+        rows = []
+        for item in self.validation:
+            for i, state in enumerate(self.model.state_names):
+                rows.append({
+                    "run": item["run"],
+                    "state": state,
+                    "rmse": item["metrics"]["rmse"][i],
+                    "nrmse": item["metrics"]["nrmse"][i],
+                    "fit_percent": item["metrics"]["fit_percent"][i],
+                    "diverged": item["simulation"].diverged,
+                })
+        return pd.DataFrame(rows, columns=["run", "state", "rmse", "nrmse", "fit_percent", "diverged"])
+
+
+def derivative_options(config):
+    section = config["derivatives"]
+    return {k: v for k, v in section.items() if k not in ("method", "trim")}
+
+
+def differentiate(dataset, config):
+    """Smooth and differentiate every run; trim the unreliable ends."""
+    section = config["derivatives"]
+    method, options = section["method"], derivative_options(config)
+    trim = section["trim"] if section["trim"] is not None else default_trim(method, options)
+    needed = max(min_samples(method, options), 2 * trim + 3)
+    result = []
+    for run in dataset.runs:
+        if len(run.t) < needed:
+            raise DataError(
+                f"{run.source}: {len(run.t)} samples is too few for [derivatives].method = "
+                f"{method!r} with these options and trim = {trim} (needs at least {needed})."
+            )
+        try:
+            # Time from the run's start: absolute clock stamps (1.7e9 s) lose the
+            # float64 resolution a uniform-step check needs.
+            x_smooth, x_dot = DERIVATIVE_METHODS[method](run.t - run.t[0], run.x, **options)
+        except DataError as err:
+            raise DataError(f"{run.source}: {err}") from None
+        keep = slice(trim, len(run.t) - trim)
+        result.append(Smoothed(run.name, run.t[keep], x_smooth[keep], x_dot[keep], run.u[keep], run.x[keep]))
+    return result
+
+
+def library_from_config(config):
+    terms = config["terms"]
+    data = config["data"]
+    return build_library(
+        data["states"],
+        data["inputs"],
+        degree=terms["degree"],
+        variables=terms["variables"],
+        input_degree=terms["input_degree"],
+        state_input_products=terms["state_input_products"],
+        constant=terms["constant"],
+        trig_variables=terms["trig_variables"],
+        trig_frequencies=terms["trig_frequencies"],
+        trig_input_products=terms["trig_input_products"],
+        custom=terms["custom"],
+        where=f"{config['_source']}: [terms]",
+    )
+
+
+def fold_blocks(smoothed, library, n_folds, split):
+    """Cut runs into contiguous blocks and label each block with its CV fold.
+
+    ``"runs"``: whole runs are folds (run i in fold i mod n_folds); ``"blocks"``: each
+    run is cut into n_folds contiguous blocks and fold k holds the k-th block of every
+    run. ``"auto"`` takes runs when there are at least n_folds of them. Rows are never
+    assigned at random: neighbouring samples are nearly identical and would leak.
+    """
+    if split == "auto":
+        split = "runs" if len(smoothed) >= n_folds else "blocks"
+    pieces, labels = [], []
+    for r, run in enumerate(smoothed):
+        theta = library.evaluate(run.x, run.u)
+        for k, rows in enumerate(np.array_split(np.arange(len(run.t)), n_folds)):
+            pieces.append((r, theta[rows], run.x_dot[rows]))
+            labels.append(r % n_folds if split == "runs" else k)
+    return block_grams(pieces), np.array(labels), split
+
+
+def check_library_size(library, n_rows, where):
+    if len(library) >= n_rows:
+        raise DataError(
+            f"{where}: the library has {len(library)} terms but the training runs give only "
+            f"{n_rows} usable samples. Lower [terms].degree or add data."
+        )
+
+
+def select_model(config, smoothed, library):
+    """Cross-validate the threshold per state and fit the final sparse model."""
+    sel = config["selection"]
+    blocks, folds, split = fold_blocks(smoothed, library, sel["cv_folds"], sel["cv_split"])
+    k = len(library)
+    total, count = blocks.total()
+    check_library_size(library, count, config["_source"])
+    cv = None
+    if sel["threshold"] == "cv":
+        cv = cross_validate(
+            blocks, folds, threshold_grid(sel), ridge=sel["ridge"], max_iter=sel["max_iter"], rule=sel["cv_rule"]
+        )
+        thresholds = cv.selected
+    else:
+        thresholds = np.full(len(config["data"]["states"]), sel["threshold"])
+    coef, converged = fit_scaled(
+        total, count, k, threshold=thresholds, ridge=sel["ridge"], max_iter=sel["max_iter"]
+    )
+    warnings = []
+    if not converged:
+        warnings.append(f"Thresholding stopped at max_iter={sel['max_iter']} before the support settled.")
+    for state, cond in zip(config["data"]["states"], condition_numbers(total, count, k, coef != 0)):
+        if cond > COND_LIMIT:
+            warnings.append(ILL_CONDITIONED.format(state=state, cond=cond))
+    for i, state in enumerate(config["data"]["states"]):
+        if not np.any(coef[:, i]):
+            warnings.append(
+                f"Every term of d({state})/dt fell below the threshold {thresholds[i]:.3g}; "
+                "its equation is empty (dx/dt = 0)."
+            )
+    return coef, thresholds, cv, split, warnings
+
+
+def state_limits(training, factor):
+    """Center and half-width of the bounded region used to call a simulation diverged."""
+    x = np.vstack([run.x for run in training.runs])
+    low, high = x.min(axis=0), x.max(axis=0)
+    center = (low + high) / 2
+    half = np.maximum((high - low) / 2, 1e-12 + 1e-9 * np.abs(center))
+    return center, factor * half
+
+
+def validate_held_out(config, model, held_out_smoothed, held_out, limits):
+    """Simulate each held-out run from its smoothed initial state with its recorded input."""
+    sim = config["simulation"]
+    results = []
+    for smooth, run in zip(held_out_smoothed, held_out.runs):
+        interpolation = sim["input_interpolation"]
+        if interpolation == "auto":
+            interpolation = guess_interpolation(run.u)
+        simulation = model.simulate(
+            run.t, smooth.x[0], run.u, interpolation=interpolation, method=sim["method"],
+            rtol=sim["rtol"], atol=sim["atol"], limits=limits,
+        )
+        metrics = fit_metrics(run.x, simulation.x)
+        results.append({"run": run.name, "simulation": simulation, "metrics": metrics,
+                        "interpolation": interpolation, "t": run.t, "x": run.x})
+    return results
+
+
+def data_warnings(training):
+    notes = []
+    for run in training.runs:
+        for j, name in enumerate(training.input_names):
+            spread = np.ptp(run.u[:, j])
+            if spread <= 1e-12 * max(1.0, np.abs(run.u[:, j]).max()):
+                notes.append(f"{run.source}: input {name!r} never moves in this run; "
+                             "its effect cannot be identified from it.")
+        if len(run.t) < SHORT_RUN:
+            notes.append(f"{run.source}: only {len(run.t)} samples; estimates from it are fragile.")
+        if run.touched:
+            notes.append(f"{run.source}: {run.touched} samples were dropped or interpolated by gap handling.")
+    return notes
+
+
+def run(source, *, progress=False):
+    """Run the whole pipeline from a config (path to a TOML file, or a dict).
+
+    Returns
+    -------
+    Result
+        The model, the CV curve, the held-out validation and the warnings. Nothing is
+        written; see :func:`write_outputs` (the CLI does both).
+    """
+    config = load_config(source)
+    training, held_out = load_dataset(config)
+    library = library_from_config(config)
+    smoothed = differentiate(training, config)
+    coef, thresholds, cv, split, warnings = select_model(config, smoothed, library)
+    model = Model(
+        training.state_names,
+        training.input_names,
+        tuple(library.names),
+        coef,
+        info={
+            "threshold": {s: float(v) for s, v in zip(training.state_names, thresholds)},
+            "threshold_scale": "dimensionless: |coefficient| * rms(term) / rms(derivative)",
+            "derivative_method": config["derivatives"]["method"],
+            "cv_split": split if cv is not None else None,
+        },
+    )
+    limits = state_limits(training, config["simulation"]["divergence_factor"])
+    # Validation starts from the smoothed state; differentiate() trimmed the ends,
+    # so smooth the held-out runs again without trimming for their first sample.
+    untrimmed = dict(config, derivatives=dict(config["derivatives"], trim=0))
+    held_smoothed = differentiate(held_out, untrimmed) if held_out.runs else []
+    validation = validate_held_out(config, model, held_smoothed, held_out, limits)
+    warnings = data_warnings(training) + warnings
+    for item in validation:
+        if item["simulation"].diverged:
+            warnings.append(f"Held-out run {item['run']!r} diverged: {item['simulation'].message}.")
+    if not held_out.runs:
+        warnings.append("No run is held out: the model is not validated on unseen data.")
+    return Result(config, model, library.names, cv, training, held_out, smoothed, validation, warnings)
+
+
+# --------------------------------------------------------------------------- outputs
+
+
+def file_hash(path):
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for chunk in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def provenance(result):
+    packages = {}
+    for name in ("discover", "numpy", "scipy", "pandas", "scikit-learn", "matplotlib", "derivative"):
+        try:
+            packages[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            packages[name] = None
+    runs = list(result.training.runs) + list(result.held_out.runs)
+    return {
+        "config_source": result.config["_source"],
+        "seed": result.config["seed"],
+        "data_files": [
+            {"run": r.name, "path": r.source, "sha256": file_hash(r.source), "role":
+             "held_out" if r in result.held_out.runs else "training", "samples": len(r.t)}
+            for r in runs
+        ],
+        "packages": packages,
+        "python": platform.python_version(),
+    }
+
+
+def coefficient_table(model):
+    rows = []
+    for state, kept in model.equations():
+        for expr, coefficient, stats in kept:
+            rows.append({"state": state, "term": expr, "coefficient": coefficient, **stats})
+    return pd.DataFrame(rows, columns=["state", "term", "coefficient"] + sorted(model.term_stats))
+
+
+def default_output_dir(config):
+    if config["output"]["dir"] is not None:
+        return Path(config["_base"]) / config["output"]["dir"]
+    stem = Path(config["_source"]).stem if config["_source"] != "config" else "run"
+    return Path("out") / stem
+
+
+def write_outputs(result, out_dir=None, *, force=False):
+    """Write the output folder atomically: into a temporary sibling, then rename.
+
+    An existing folder is replaced only with ``force``; it is moved aside first and
+    removed only once the new folder is in place.
+    """
+    target = Path(out_dir) if out_dir is not None else default_output_dir(result.config)
+    if target.exists() and not force:
+        raise OutputError(
+            f"{target}: the output folder exists already. Pass --force to replace it, "
+            "or choose another folder with --out."
+        )
+    target.parent.mkdir(parents=True, exist_ok=True)
+    staging = Path(tempfile.mkdtemp(prefix=f".{target.name}.incomplete-", dir=target.parent))
+    try:
+        _write_all(result, staging)
+        if target.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
+            os.replace(target, old / "previous")
+            os.replace(staging, target)
+            shutil.rmtree(old)
+        else:
+            os.replace(staging, target)
+    except BaseException:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise
+    result.output_dir = target
+    return target
+
+
+def _write_all(result, folder):
+    model = result.model
+    model.save(folder / "model.json")
+    coefficient_table(model).to_csv(folder / "coefficients.csv", index=False)
+    result.validation_table().to_csv(folder / "heldout_metrics.csv", index=False)
+    if result.cv is not None:
+        report.cv_table(result.cv, model.state_names).to_csv(folder / "cv_curve.csv", index=False)
+    (folder / "config_effective.toml").write_text(to_toml(result.config))
+    (folder / "provenance.json").write_text(json.dumps(provenance(result), indent=2) + "\n")
+    (folder / "warnings.txt").write_text("".join(f"{w}\n" for w in result.warnings))
+    (folder / "summary.txt").write_text(report.summary(result) + "\n")
+    if result.config["output"]["figures"]:
+        report.write_figures(result, folder)

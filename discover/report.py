@@ -1,0 +1,149 @@
+"""Terminal summary, tables and figures. Reports only format: nothing here fits anything."""
+
+from __future__ import annotations
+
+import re
+
+import numpy as np
+import pandas as pd
+
+SUPERSCRIPTS = str.maketrans("0123456789-", "⁰¹²³⁴⁵⁶⁷⁸⁹⁻")
+CAUTION = (
+    "Caution: an identified model is an estimate from finite, noisy data. Validate it on "
+    "independent runs before using it to control real equipment, and defer to local codes "
+    "and licensed engineering practice."
+)
+
+
+def pretty_term(expr):
+    """``'yaw_rate**3*rudder' -> 'yaw_rate³·rudder'`` for reading; files keep the Python form."""
+    text = re.sub(r"\*\*(\d+)", lambda m: m.group(1).translate(SUPERSCRIPTS), expr)
+    return text.replace("*", "·")
+
+
+def format_equation(state, kept, *, show_probability=False):
+    """``d(yaw_rate)/dt = -0.05·yaw_rate + 0.005·rudder`` from (expr, coefficient, stats) rows."""
+    if not kept:
+        return f"d({state})/dt = 0"
+    parts = []
+    for n, (expr, coefficient, stats) in enumerate(kept):
+        sign = "-" if coefficient < 0 else "+"
+        magnitude = f"{abs(coefficient):.4g}"
+        body = magnitude if expr == "1" else f"{magnitude}·{pretty_term(expr)}"
+        p = stats.get("inclusion_probability")
+        if show_probability and p is not None and np.isfinite(p):
+            body += f" [p={p:.2f}]"
+        parts.append((f"-{body}" if sign == "-" else body) if n == 0 else f" {sign} {body}")
+    return f"d({state})/dt = " + "".join(parts)
+
+
+def summary(result):
+    """The text printed at the end of a run (also written as summary.txt)."""
+    model = result.model
+    lines = ["Identified equations:"]
+    show = "inclusion_probability" in model.term_stats
+    for state, kept in model.equations():
+        lines.append("  " + format_equation(state, kept, show_probability=show))
+    thresholds = model.info.get("threshold", {})
+    if thresholds:
+        how = f"cross-validated, rule {result.cv.rule!r}" if result.cv is not None else "fixed"
+        lines.append("Threshold (dimensionless, " + how + "): "
+                     + ", ".join(f"{s} {v:.3g}" for s, v in thresholds.items()))
+    if result.validation:
+        lines.append("Held-out runs (free-run simulation with the recorded input):")
+        for item in result.validation:
+            sim = item["simulation"]
+            if sim.diverged:
+                lines.append(f"  {item['run']}: diverged ({sim.message})")
+                continue
+            fits = ", ".join(f"{s} {f:.1f} %" for s, f in zip(model.state_names, item["metrics"]["fit_percent"]))
+            lines.append(f"  {item['run']}: fit {fits}")
+    for warning in result.warnings:
+        lines.append(f"Warning: {warning}")
+    lines.append(CAUTION)
+    return "\n".join(lines)
+
+
+def cv_table(cv, state_names):
+    rows = []
+    for t, threshold in enumerate(cv.thresholds):
+        for i, state in enumerate(state_names):
+            rows.append({
+                "state": state,
+                "threshold": threshold,
+                "cv_error": cv.error[t, i],
+                "cv_error_se": cv.error_se[t, i],
+                "n_terms": int(cv.n_terms[t, i]),
+                "selected": bool(np.isclose(threshold, cv.selected[i])),
+            })
+    return pd.DataFrame(rows)
+
+
+def _pyplot():
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def plot_cv_curve(cv, state_names):
+    """CV error (with ±1 SE) and term count against the threshold, one panel per state."""
+    plt = _pyplot()
+    n = len(state_names)
+    fig, axes = plt.subplots(1, n, figsize=(4.2 * n, 3.4), squeeze=False)
+    for i, (ax, state) in enumerate(zip(axes[0], state_names)):
+        ax.errorbar(cv.thresholds, cv.error[:, i], yerr=cv.error_se[:, i], color="black",
+                    marker="o", markersize=3, capsize=2, label="CV error")
+        ax.axvline(cv.selected[i], color="0.4", linestyle="--", label="selected")
+        ax.set_xscale("log")
+        ax.set_yscale("log")
+        ax.set_xlabel("threshold (dimensionless)")
+        ax.set_ylabel("relative CV error of d/dt")
+        ax.set_title(f"d({state})/dt")
+        twin = ax.twinx()
+        twin.step(cv.thresholds, cv.n_terms[:, i], where="mid", color="0.55", linestyle=":")
+        twin.set_ylabel("terms kept", color="0.35")
+        if i == 0:
+            ax.legend(loc="upper left", fontsize=8)
+    fig.tight_layout()
+    return fig
+
+
+def plot_held_out(item, state_names, *, band=None):
+    """Measured vs simulated states of one held-out run."""
+    plt = _pyplot()
+    n = len(state_names)
+    fig, axes = plt.subplots(n, 1, figsize=(7, 2.2 * n + 0.6), sharex=True, squeeze=False)
+    sim = item["simulation"]
+    for i, (ax, state) in enumerate(zip(axes[:, 0], state_names)):
+        ax.plot(item["t"], item["x"][:, i], color="0.6", linewidth=1.0, label="measured")
+        ax.plot(sim.t, sim.x[:, i], color="black", linestyle="--", linewidth=1.2, label="simulated")
+        if band is not None:
+            ax.fill_between(sim.t, band[0][:, i], band[1][:, i], color="0.8", label="band")
+        ax.set_ylabel(state)
+        fit = item["metrics"]["fit_percent"][i]
+        ax.set_title(f"{state}: fit {fit:.1f} %" if np.isfinite(fit) else f"{state}: diverged", fontsize=9)
+    axes[0, 0].legend(loc="best", fontsize=8)
+    axes[-1, 0].set_xlabel("time")
+    fig.suptitle(f"held-out run {item['run']}", fontsize=10)
+    fig.tight_layout()
+    return fig
+
+
+def safe_name(text):
+    """A file-name-safe version of a name that came from the data."""
+    return re.sub(r"[^A-Za-z0-9_.-]", "_", text)[:80] or "run"
+
+
+def write_figures(result, folder):
+    plt = _pyplot()
+    figures = []
+    if result.cv is not None:
+        figures.append(("cv_curve.png", plot_cv_curve(result.cv, result.model.state_names)))
+    for item in result.validation:
+        figures.append((f"heldout_{safe_name(item['run'])}.png", plot_held_out(item, result.model.state_names)))
+    for name, fig in figures:
+        fig.savefig(folder / name, dpi=110, metadata={"Software": None})
+        plt.close(fig)

@@ -1,0 +1,96 @@
+"""Published and textbook systems with their true coefficients, and helpers to log runs.
+
+Every system here is simulated with ``scipy.integrate.solve_ivp`` at tight
+tolerances (reference library) and written as CSV runs for the pipeline.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from scipy.integrate import solve_ivp
+
+# Lorenz (1963), J. Atmos. Sci. 20: sigma = 10, rho = 28, beta = 8/3.
+SIGMA, RHO, BETA = 10.0, 28.0, 8.0 / 3.0
+
+# dx/dt = sigma (y - x) + u, dy/dt = x (rho - z) - y, dz/dt = x y - beta z.
+# The input on the first equation is ours (a forced Lorenz system).
+LORENZ_INPUT_TRUTH = {
+    "x": {"x": -SIGMA, "y": SIGMA, "u": 1.0},
+    "y": {"x": RHO, "y": -1.0, "x*z": -1.0},
+    "z": {"x*y": 1.0, "z": -BETA},
+}
+
+# Series RLC circuit, states capacitor voltage v and inductor current i, input source
+# voltage vin: dv/dt = i / C, di/dt = (vin - v - R i) / L (Kirchhoff's voltage law;
+# common practice). Component values are ours.
+R_OHM, L_HENRY, C_FARAD = 5.0, 0.1, 1e-3
+
+
+def lorenz_input(t):
+    return 8.0 * np.sin(1.3 * t) + 4.0 * np.cos(3.1 * t + 0.4)
+
+
+def lorenz_with_input(t, state):
+    x, y, z = state
+    return [SIGMA * (y - x) + lorenz_input(t), x * (RHO - z) - y, x * y - BETA * z]
+
+
+def rlc_input(t):
+    return 10.0 * np.sin(40.0 * t) + 6.0 * np.sin(170.0 * t + 1.0) + 3.0
+
+
+def rlc(t, state):
+    v, i = state
+    return [i / C_FARAD, (rlc_input(t) - v - R_OHM * i) / L_HENRY]
+
+
+def simulate_true(fun, x0, t):
+    """Reference trajectory: rows = time (solve_ivp's (n_states, n_points) transposed)."""
+    sol = solve_ivp(fun, (t[0], t[-1]), x0, t_eval=t, method="DOP853", rtol=1e-11, atol=1e-11)
+    assert sol.success
+    return sol.y.T
+
+
+def lorenz_runs(*, noise=0.0, seed=0, n_runs=3, duration=10.0, dt=0.002):
+    """Runs of the forced Lorenz system from different initial states, columns t, x, y, z, u."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(0.0, duration, dt)
+    frames = []
+    for k in range(n_runs):
+        x0 = [-8.0 + 4 * k, 7.0 - 3 * k, 27.0 + k]
+        states = simulate_true(lorenz_with_input, x0, t)
+        states = states + noise * states.std(axis=0) * rng.standard_normal(states.shape)
+        frames.append(pd.DataFrame({"t": t, "x": states[:, 0], "y": states[:, 1],
+                                    "z": states[:, 2], "u": lorenz_input(t)}))
+    return frames
+
+
+def rlc_runs(*, n_runs=2, duration=0.5, dt=1e-4):
+    t = np.arange(0.0, duration, dt)
+    frames = []
+    for k in range(n_runs):
+        states = simulate_true(rlc, [k * 2.0, -0.1 * k], t)
+        frames.append(pd.DataFrame({"t": t, "v": states[:, 0], "i": states[:, 1], "vin": rlc_input(t)}))
+    return frames
+
+
+def write_runs(folder, frames, prefix="run"):
+    """Write frames as CSV files run_0.csv, run_1.csv, ... in ``folder``; return the glob."""
+    folder.mkdir(parents=True, exist_ok=True)
+    for k, frame in enumerate(frames):
+        frame.to_csv(folder / f"{prefix}_{k}.csv", index=False, float_format="%.12g")
+    return str(folder / f"{prefix}_*.csv")
+
+
+def coefficient_map(model):
+    """{state: {term_key: coefficient}} of a model, for comparison with the truths above."""
+    from discover.terms import term_key
+
+    return {state: {term_key(expr): c for expr, c, _ in kept} for state, kept in model.equations()}
+
+
+def truth_map(truth):
+    from discover.terms import term_key
+
+    return {state: {term_key(expr): c for expr, c in terms.items()} for state, terms in truth.items()}
