@@ -17,7 +17,7 @@ Inputs
 ------
 Light follows a day/night schedule: 14 h on, 10 h off, with the daytime
 intensity drawn for each day uniformly in [50, 300]. Dilution steps between
-levels drawn uniformly in [0, 0.05] 1/h, each held for 24-72 h. Every change of
+levels drawn uniformly in [0, 0.08] 1/h, each held for 24-72 h. Every change of
 either input is a raised-cosine ramp, so both inputs are continuous (and once
 differentiable) functions of time: dilution changes take ``DILUTION_RAMP`` =
 0.5 h, while light dims up and down over ``LIGHT_RAMP`` = 2 h (dawn and dusk).
@@ -30,7 +30,8 @@ Runs
 ----
 ``train_1.csv`` ... ``train_4.csv``
     300 h each, different seeds and initial conditions (biomass uniform in
-    [0.2, 1.0], nitrate uniform in [0.5, 1.5]).
+    [0.3, 1.5], nitrate uniform in [0.1, 1.9]: wide, so that biomass + 2·nitrate
+    starts off its balance and the dilution terms are not collinear).
 ``heldout.csv``
     Held-out run with a different input pattern: continuous light following a
     24 h sine between 50 and 300, and dilution pulses of 0.05 1/h for 8 h every
@@ -92,10 +93,10 @@ COLUMNS = ["t", "biomass", "nitrate", "light", "dilution"]
 
 HOURS_ON = 14.0  # light period per 24 h day
 LIGHT_RANGE = (50.0, 300.0)  # daytime intensity, umol/m**2/s
-DILUTION_RANGE = (0.0, 0.05)  # 1/h
+DILUTION_RANGE = (0.0, 0.08)  # 1/h
 DILUTION_HOLD_RANGE = (24.0, 72.0)  # h
-BIOMASS_START_RANGE = (0.2, 1.0)  # g/L
-NITRATE_START_RANGE = (0.5, 1.5)  # g/L
+BIOMASS_START_RANGE = (0.3, 1.5)  # g/L
+NITRATE_START_RANGE = (0.1, 1.9)  # g/L, wide so biomass + 2·nitrate starts off its balance
 
 
 def smooth_steps(t, change_times, levels, *, ramp):
@@ -247,7 +248,8 @@ def main():
         rng = np.random.default_rng(seed)
         initial_state = (rng.uniform(*BIOMASS_START_RANGE), rng.uniform(*NITRATE_START_RANGE))
         runs[name] = rng, initial_state, day_night_light(rng), random_dilution(rng)
-    runs["heldout"] = (np.random.default_rng(HELDOUT_SEED), HELDOUT_INITIAL_STATE, *heldout_inputs())
+    heldout_rng = np.random.default_rng(HELDOUT_SEED)
+    runs["heldout"] = heldout_rng, HELDOUT_INITIAL_STATE, *heldout_inputs()
     for name, (rng, initial_state, light, dilution) in runs.items():
         samples = simulate_run(initial_state, light, dilution)
         check_plausible(samples, name)

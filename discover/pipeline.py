@@ -88,6 +88,10 @@ def derivative_options(config):
     return {k: v for k, v in section.items() if k not in ("method", "trim")}
 
 
+def _describe_options(options):
+    return "".join(f"{key} = {value!r}, " for key, value in options.items())
+
+
 def differentiate(dataset, config):
     """Smooth and differentiate every run; trim the unreliable ends."""
     section = config["derivatives"]
@@ -99,7 +103,8 @@ def differentiate(dataset, config):
         if len(run.t) < needed:
             raise DataError(
                 f"{run.source}: {len(run.t)} samples is too few for [derivatives].method = "
-                f"{method!r} with these options and trim = {trim} (needs at least {needed})."
+                f"{method!r} with {_describe_options(options)}trim = {trim} (needs at least {needed}). "
+                "Use a smaller window, another method, or drop the run."
             )
         try:
             # Time from the run's start: absolute clock stamps (1.7e9 s) lose the

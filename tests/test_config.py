@@ -1,0 +1,96 @@
+"""Config validation: every bad key or value names the key path, the value and what is accepted."""
+
+import pytest
+
+from discover.config import SCHEMA, load_config, to_toml, validate
+from discover.exceptions import ConfigError
+
+try:
+    import tomllib
+except ModuleNotFoundError:  # Python 3.10
+    import tomli as tomllib
+
+BASE = {"data": {"files": ["*.csv"], "states": ["x"], "inputs": ["u"]}}
+
+
+def merged(section, **keys):
+    config = {k: dict(v) for k, v in BASE.items()}
+    config.setdefault(section, {}).update(keys)
+    return config
+
+
+def message(raw):
+    with pytest.raises(ConfigError) as info:
+        validate(raw, "cfg.toml")
+    return str(info.value)
+
+
+def test_defaults_fill_every_key():
+    config = validate(BASE, "cfg.toml")
+    for section, keys in SCHEMA.items():
+        table = config if section == "" else config[section]
+        assert set(keys) <= set(table)
+    assert config["derivatives"]["window"] == 11  # the default method's own option
+
+
+def test_misspelled_key_names_the_closest_valid_key():
+    text = message(merged("derivatives", windw=11))
+    assert "unknown key [derivatives].windw" in text and "Did you mean 'window'?" in text
+    assert "cfg.toml" in text
+
+
+def test_misspelled_section():
+    text = message({**BASE, "selecton": {}})
+    assert "unknown key selecton" in text and "'selection'" in text
+
+
+def test_even_window_is_refused_with_the_value():
+    text = message(merged("derivatives", method="savitzky_golay", window=10))
+    assert text == "cfg.toml: [derivatives].window must be an odd int >= 0. Got 10."
+
+
+def test_unknown_method_lists_the_choices():
+    text = message(merged("derivatives", method="savgol"))
+    assert "[derivatives].method must be one of 'finite_difference', 'savitzky_golay'" in text
+    assert "Got 'savgol'" in text
+
+
+def test_wrong_type_and_range():
+    assert "[terms].degree must be an int >= 0 and <= 6. Got 'three'." in message(merged("terms", degree="three"))
+    assert "[selection].cv_folds must be an int >= 2" in message(merged("selection", cv_folds=1))
+    assert "[selection].threshold must be a number >= 0 or 'cv'. Got -1" in message(merged("selection", threshold=-1))
+    assert "[terms].constant must be true or false. Got 1." in message(merged("terms", constant=1))
+
+
+def test_missing_required_key():
+    assert "[data].states is required" in message({"data": {"files": ["a.csv"]}})
+
+
+def test_state_also_an_input():
+    assert "appear in both [data].states and [data].inputs" in message(merged("data", inputs=["x"]))
+
+
+def test_term_variables_must_be_columns():
+    text = message(merged("terms", variables=["x", "uu"]))
+    assert "[terms].variables names 'uu'" in text and "Did you mean 'u'?" in text
+
+
+def test_method_option_checked_at_config_time():
+    text = message(merged("derivatives", method="savitzky_golay", window=5, order=5))
+    assert text.startswith("cfg.toml: [derivatives].order") or "window" in text
+
+
+def test_missing_file_and_bad_toml(tmp_path):
+    with pytest.raises(ConfigError, match="config file not found"):
+        load_config(tmp_path / "none.toml")
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[data\nfiles = 3")
+    with pytest.raises(ConfigError, match="bad.toml: not valid TOML"):
+        load_config(bad)
+
+
+def test_effective_config_round_trips_through_toml():
+    # tomllib (the standard library's TOML reader) reads back what we write.
+    config = validate(merged("data", rename={"x": "X [m]"}), "cfg.toml")
+    again = validate(tomllib.loads(to_toml(config)), "cfg.toml")
+    assert again == config

@@ -1,0 +1,90 @@
+"""Both bundled demos, end to end: true terms recovered, held-out run predicted, outputs written.
+
+The truths are the coefficients the demo generators simulate (data_demo/make_*.py);
+the held-out runs use input signals the fit never saw.
+"""
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import discover
+from data_demo.make_bioreactor import TRUE_COEFFICIENTS as BIOREACTOR_TRUTH
+from data_demo.make_ship import TRUE_COEFFICIENTS as SHIP_TRUTH
+from discover.cli import main
+from systems import coefficient_map, truth_map
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture(scope="module", params=[("ship", SHIP_TRUTH), ("bioreactor", BIOREACTOR_TRUTH)],
+                ids=["ship", "bioreactor"])
+def demo(request):
+    name, truth = request.param
+    return discover.run(ROOT / "configs" / f"{name}.toml"), truth
+
+
+def test_true_term_set_and_coefficients(demo):
+    result, truth = demo
+    found, expected = coefficient_map(result.model), truth_map(truth)
+    for state in expected:
+        assert set(found[state]) == set(expected[state]), state
+        for key, value in expected[state].items():
+            # 1.5 % measurement noise: coefficients within 5 % (our tolerance).
+            assert found[state][key] == pytest.approx(value, rel=0.05), (state, key)
+
+
+def test_held_out_fit_above_90_percent(demo):
+    result, _ = demo
+    assert result.validation, "the demo config holds a run out"
+    for item in result.validation:
+        assert not item["simulation"].diverged
+        assert np.all(item["metrics"]["fit_percent"] > 90.0), item["metrics"]["fit_percent"]
+
+
+def test_cli_writes_output_folder_and_refuses_to_overwrite(tmp_path, capsys):
+    out = tmp_path / "ship"
+    assert main(["run", str(ROOT / "configs" / "ship.toml"), "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    assert "d(yaw_rate)/dt = " in printed and "fit heading" in printed and "Caution" in printed
+    expected = {"model.json", "coefficients.csv", "heldout_metrics.csv", "cv_curve.csv", "cv_curve.png",
+                "heldout_heldout_sine.png", "config_effective.toml", "provenance.json", "summary.txt"}
+    assert expected <= {p.name for p in out.iterdir()}
+    first = (out / "model.json").read_bytes()
+    document = json.loads(first)
+    assert document["format"] == "discover-model/1"
+    assert document["states"] == ["heading", "yaw_rate"] and document["inputs"] == ["rudder"]
+
+    # Without --force an existing folder is kept as it is (exit status 6, one line).
+    assert main(["run", str(ROOT / "configs" / "ship.toml"), "--out", str(out)]) == 6
+    assert "exists already" in capsys.readouterr().err
+    assert (out / "model.json").read_bytes() == first
+
+    # The same config and data give the same model file, byte for byte.
+    assert main(["run", str(ROOT / "configs" / "ship.toml"), "--out", str(out), "--force"]) == 0
+    assert (out / "model.json").read_bytes() == first
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")], "no staging folder left"
+
+
+def test_saved_model_reproduces_the_in_memory_model(demo, tmp_path):
+    result, _ = demo
+    result.model.save(tmp_path / "model.json")
+    loaded = discover.load_model(tmp_path / "model.json")
+    rng = np.random.default_rng(0)
+    x = rng.normal(size=(50, len(loaded.state_names)))
+    u = rng.normal(size=(50, len(loaded.input_names)))
+    # Coefficients round-trip exactly through JSON; only the summation order may differ.
+    np.testing.assert_allclose(loaded.rhs(x, u), result.model.rhs(x, u), rtol=1e-13, atol=1e-15)
+
+
+def test_cli_error_is_one_line_with_status(tmp_path):
+    bad = tmp_path / "bad.toml"
+    bad.write_text('[data]\nfiles = ["nothing/*.csv"]\nstates = ["x"]\n')
+    proc = subprocess.run([sys.executable, "-m", "discover", "run", str(bad)], capture_output=True, text=True)
+    assert proc.returncode == 3
+    assert proc.stderr.count("\n") == 1 and "matches no file" in proc.stderr
+    assert "Traceback" not in proc.stderr
