@@ -90,6 +90,17 @@ SCHEMA = {
         "cv_split": Key("str", "auto", choices=("auto", "runs", "blocks")),
         "cv_rule": Key("str", "one_se", choices=("one_se", "min")),
     },
+    "bootstrap": {
+        "members": Key("int", 100, minimum=0, maximum=100000),  # 0 turns the ensemble off
+        "resample": Key("str", "auto", choices=("auto", "blocks", "runs", "rows")),
+        "block_length": Key("int", None, minimum=4, nullable=True),
+        "library_fraction": Key("float", 1.0, minimum=0.05, maximum=1.0),
+        "inclusion_min": Key("float", 0.5, minimum=0.0, maximum=1.0),
+        "coefficients": Key("str", "refit", choices=("refit", "bragg")),
+        "level": Key("float", 0.9, minimum=0.5, maximum=0.999),
+        "n_jobs": Key("int", 1, minimum=-1),
+        "bands": Key("bool", True),
+    },
     "simulation": {
         "input_interpolation": Key("str", "auto", choices=("auto", "linear", "zoh")),
         "method": Key("str", "LSODA", choices=SIMULATION_METHODS),

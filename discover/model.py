@@ -105,6 +105,7 @@ class Model:
         for state, kept in self.equations():
             rows = []
             for expr, coefficient, stats in kept:
+                stats = {k: (v if np.isfinite(v) else None) for k, v in stats.items()}
                 row = {"expr": expr, "coefficient": coefficient}
                 row["inclusion_probability"] = stats.pop("inclusion_probability", None)
                 row.update(stats)

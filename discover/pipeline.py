@@ -21,11 +21,12 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from . import report
+from . import bootstrap, report
 from .config import load_config, threshold_grid, to_toml
 from .data import load_dataset
 from .derivatives import DERIVATIVE_METHODS, default_trim, min_samples
 from .exceptions import DataError, OutputError
+from .expressions import parse_expression
 from .model import Model
 from .selection import (
     ILL_CONDITIONED,
@@ -66,6 +67,8 @@ class Result:
     smoothed: list
     validation: list = field(default_factory=list)
     warnings: list = field(default_factory=list)
+    single_model: Model | None = None
+    ensemble: object = None
     output_dir: Path | None = None
 
     def validation_table(self):
@@ -79,8 +82,25 @@ class Result:
                     "nrmse": item["metrics"]["nrmse"][i],
                     "fit_percent": item["metrics"]["fit_percent"][i],
                     "diverged": item["simulation"].diverged,
+                    "band_coverage": item["band_coverage"][i] if "band_coverage" in item else np.nan,
+                    "members_diverged": item.get("members_diverged", np.nan),
                 })
-        return pd.DataFrame(rows, columns=["run", "state", "rmse", "nrmse", "fit_percent", "diverged"])
+        return pd.DataFrame(rows, columns=["run", "state", "rmse", "nrmse", "fit_percent", "diverged",
+                                           "band_coverage", "members_diverged"])
+
+    def inclusion_table(self):
+        """Every candidate term × state: inclusion probability and coefficient statistics."""
+        if self.ensemble is None:
+            return None
+        summary = self.ensemble.summary
+        rows = []
+        for i, state in enumerate(self.model.state_names):
+            for j, term in enumerate(self.library_terms):
+                row = {"state": state, "term": term, "in_model": bool(self.model.coef[j, i] != 0),
+                       "coefficient": self.model.coef[j, i]}
+                row.update({name: values[j, i] for name, values in summary.as_stats().items()})
+                rows.append(row)
+        return pd.DataFrame(rows)
 
 
 def derivative_options(config):
@@ -136,23 +156,36 @@ def library_from_config(config):
     )
 
 
-def fold_blocks(smoothed, library, n_folds, split):
-    """Cut runs into contiguous blocks and label each block with its CV fold.
+def regression_blocks(smoothed, library, sub_length, n_folds):
+    """Evaluate the library once per run and keep one augmented Gram per sub-block.
 
-    ``"runs"``: whole runs are folds (run i in fold i mod n_folds); ``"blocks"``: each
-    run is cut into n_folds contiguous blocks and fold k holds the k-th block of every
-    run. ``"auto"`` takes runs when there are at least n_folds of them. Rows are never
-    assigned at random: neighbouring samples are nearly identical and would leak.
+    Each run is cut into contiguous sub-blocks of about ``sub_length`` rows (and at
+    least ``n_folds`` of them); folds and bootstrap members are sums of these Grams.
     """
-    if split == "auto":
-        split = "runs" if len(smoothed) >= n_folds else "blocks"
-    pieces, labels = [], []
+    pieces = []
     for r, run in enumerate(smoothed):
         theta = library.evaluate(run.x, run.u)
-        for k, rows in enumerate(np.array_split(np.arange(len(run.t)), n_folds)):
+        n_sub = min(len(run.t), max(n_folds, len(run.t) // sub_length))
+        for rows in np.array_split(np.arange(len(run.t)), n_sub):
             pieces.append((r, theta[rows], run.x_dot[rows]))
-            labels.append(r % n_folds if split == "runs" else k)
-    return block_grams(pieces), np.array(labels), split
+    return block_grams(pieces), pieces
+
+
+def fold_labels(blocks, n_folds, split):
+    """CV fold of each sub-block; rows are never assigned at random.
+
+    ``"runs"``: whole runs are folds (run i in fold i mod n_folds). ``"blocks"``: each
+    run is cut into n_folds contiguous stretches and fold k holds the k-th stretch of
+    every run. ``"auto"`` takes runs when there are at least n_folds of them.
+    Neighbouring samples are nearly identical; random rows would leak.
+    """
+    n_runs = len(np.unique(blocks.runs))
+    if split == "auto":
+        split = "runs" if n_runs >= n_folds else "blocks"
+    if split == "runs":
+        return blocks.runs % n_folds, split
+    per_run = np.bincount(blocks.runs)[blocks.runs]
+    return blocks.positions * n_folds // per_run, split
 
 
 def check_library_size(library, n_rows, where):
@@ -163,10 +196,10 @@ def check_library_size(library, n_rows, where):
         )
 
 
-def select_model(config, smoothed, library):
-    """Cross-validate the threshold per state and fit the final sparse model."""
+def select_model(config, blocks, library):
+    """Cross-validate the threshold per state and fit the single sparse model."""
     sel = config["selection"]
-    blocks, folds, split = fold_blocks(smoothed, library, sel["cv_folds"], sel["cv_split"])
+    folds, split = fold_labels(blocks, sel["cv_folds"], sel["cv_split"])
     k = len(library)
     total, count = blocks.total()
     check_library_size(library, count, config["_source"])
@@ -219,7 +252,8 @@ def validate_held_out(config, model, held_out_smoothed, held_out, limits):
         )
         metrics = fit_metrics(run.x, simulation.x)
         results.append({"run": run.name, "simulation": simulation, "metrics": metrics,
-                        "interpolation": interpolation, "t": run.t, "x": run.x})
+                        "interpolation": interpolation, "t": run.t, "x": run.x, "u": run.u,
+                        "x0": smooth.x[0]})
     return results
 
 
@@ -251,32 +285,140 @@ def run(source, *, progress=False):
     training, held_out = load_dataset(config)
     library = library_from_config(config)
     smoothed = differentiate(training, config)
-    coef, thresholds, cv, split, warnings = select_model(config, smoothed, library)
-    model = Model(
-        training.state_names,
-        training.input_names,
-        tuple(library.names),
-        coef,
-        info={
-            "threshold": {s: float(v) for s, v in zip(training.state_names, thresholds)},
-            "threshold_scale": "dimensionless: |coefficient| * rms(term) / rms(derivative)",
-            "derivative_method": config["derivatives"]["method"],
-            "cv_split": split if cv is not None else None,
-        },
+    correlation = int(np.median([bootstrap.correlation_length(run.x_dot) for run in smoothed]))
+    sub_length, block_length = bootstrap.block_plan(
+        [len(run.t) for run in smoothed], correlation, config["bootstrap"]["block_length"]
     )
+    blocks, pieces = regression_blocks(smoothed, library, sub_length, config["selection"]["cv_folds"])
+    coef, thresholds, cv, split, warnings = select_model(config, blocks, library)
+    info = {
+        "threshold": {s: float(v) for s, v in zip(training.state_names, thresholds)},
+        "threshold_scale": "dimensionless: |coefficient| * rms(term) / rms(derivative)",
+        "derivative_method": config["derivatives"]["method"],
+        "cv_split": split if cv is not None else None,
+    }
+    single = Model(training.state_names, training.input_names, tuple(library.names), coef, info=info)
+    ensemble = None
+    model = single
+    if config["bootstrap"]["members"] > 0:
+        ensemble = run_ensemble(config, blocks, pieces, library, thresholds, block_length, progress)
+        model = ensemble_model(config, single, ensemble, blocks)
     limits = state_limits(training, config["simulation"]["divergence_factor"])
     # Validation starts from the smoothed state; differentiate() trimmed the ends,
     # so smooth the held-out runs again without trimming for their first sample.
     untrimmed = dict(config, derivatives=dict(config["derivatives"], trim=0))
     held_smoothed = differentiate(held_out, untrimmed) if held_out.runs else []
     validation = validate_held_out(config, model, held_smoothed, held_out, limits)
+    if ensemble is not None and config["bootstrap"]["bands"]:
+        add_prediction_bands(config, model, ensemble, validation, limits, measurement_noise(smoothed))
     warnings = data_warnings(training) + warnings
     for item in validation:
         if item["simulation"].diverged:
             warnings.append(f"Held-out run {item['run']!r} diverged: {item['simulation'].message}.")
+        if item.get("members_diverged"):
+            warnings.append(
+                f"Held-out run {item['run']!r}: {item['members_diverged']} of "
+                f"{config['bootstrap']['members']} ensemble members diverged; the band uses the others."
+            )
     if not held_out.runs:
         warnings.append("No run is held out: the model is not validated on unseen data.")
-    return Result(config, model, library.names, cv, training, held_out, smoothed, validation, warnings)
+    return Result(config, model, library.names, cv, training, held_out, smoothed, validation, warnings,
+                  single_model=single, ensemble=ensemble)
+
+
+@dataclass(frozen=True)
+class Ensemble:
+    """Bootstrap members and their summary."""
+
+    coef: np.ndarray  # (n_members, n_terms, n_states)
+    available: np.ndarray  # (n_members, n_terms)
+    summary: object
+    scheme: str
+    block_length: int
+    weights: np.ndarray | None
+
+
+def run_ensemble(config, blocks, pieces, library, thresholds, block_length, progress):
+    """Fit the bootstrap members at the selected thresholds."""
+    boot, sel = config["bootstrap"], config["selection"]
+    rng = np.random.default_rng(config["seed"])
+    scheme = bootstrap.resolve_scheme(boot["resample"], len(np.unique(blocks.runs)))
+    n, k = boot["members"], len(library)
+    weights = None
+    if scheme == "rows":
+        grams, counts = bootstrap.row_weights_ensemble(pieces, n, rng)
+        available = bootstrap.library_masks(n, k, boot["library_fraction"], rng)
+        coef = np.array([
+            bootstrap.fit_member(g, c, k, a, thresholds, sel["ridge"], sel["max_iter"])
+            for g, c, a in zip(grams, counts, available)
+        ])
+    else:
+        weights = bootstrap.member_weights(blocks.runs, n, scheme, rng)
+        available = bootstrap.library_masks(n, k, boot["library_fraction"], rng)
+        coef = bootstrap.fit_ensemble(
+            blocks, weights, available, thresholds, ridge=sel["ridge"], max_iter=sel["max_iter"],
+            n_jobs=boot["n_jobs"], progress=progress,
+        )
+    summary = bootstrap.summarize(coef, available, boot["level"])
+    return Ensemble(coef, available, summary, scheme, block_length if scheme == "blocks" else None, weights)
+
+
+def ensemble_model(config, single, ensemble, blocks):
+    """The model of the ensemble: the terms kept often enough, with their statistics."""
+    boot = config["bootstrap"]
+    summary = ensemble.summary
+    total, count = blocks.total()
+    coef = bootstrap.final_coefficients(
+        summary, total, count, len(single.terms), inclusion_min=boot["inclusion_min"],
+        method=boot["coefficients"],
+    )
+    stats = {
+        "inclusion_probability": summary.inclusion_probability,
+        "coefficient_median": summary.median_kept,
+        "coefficient_low": summary.low_kept,
+        "coefficient_high": summary.high_kept,
+    }
+    info = dict(single.info)
+    info["ensemble"] = {
+        "members": int(boot["members"]),
+        "resample": ensemble.scheme,
+        "block_length": ensemble.block_length,
+        "library_fraction": boot["library_fraction"],
+        "inclusion_min": boot["inclusion_min"],
+        "coefficients": boot["coefficients"],
+        "interval_level": boot["level"],
+        "interval_over": "members that keep the term",
+    }
+    return Model(single.state_names, single.input_names, single.terms, coef, stats, info)
+
+
+def measurement_noise(smoothed):
+    """Per-state std of raw minus smoothed training states: the measurement noise estimate."""
+    residual = np.vstack([run.x_raw - run.x for run in smoothed])
+    return residual.std(axis=0)
+
+
+def add_prediction_bands(config, model, ensemble, validation, limits, noise_std):
+    """Simulate all members on each held-out run (one solver call per run) and add bands."""
+    sim, level = config["simulation"], config["bootstrap"]["level"]
+    # A stream of its own, so that the band does not shift the members' draws.
+    rng = np.random.default_rng([config["seed"], 1])
+    used = np.flatnonzero(np.any(ensemble.coef != 0, axis=(0, 2)))
+    if used.size == 0:
+        return
+    known = model.state_names + model.input_names
+    expressions = [parse_expression(model.terms[j], known) for j in used]
+    coef = ensemble.coef[:, used, :]
+    for item in validation:
+        x, diverged = bootstrap.simulate_ensemble(
+            expressions, model.state_names, model.input_names, coef, item["t"],
+            item["x0"], item["u"], interpolation=item["interpolation"], method=sim["method"],
+            rtol=sim["rtol"], atol=sim["atol"], limits=limits,
+        )
+        median, low, high = bootstrap.prediction_band(x, diverged, level, noise_std=noise_std, rng=rng)
+        item["band"] = (median, low, high)
+        item["band_coverage"] = bootstrap.band_coverage(item["x"], low, high)
+        item["members_diverged"] = int(diverged.sum())
 
 
 # --------------------------------------------------------------------------- outputs
@@ -363,6 +505,12 @@ def _write_all(result, folder):
     result.validation_table().to_csv(folder / "heldout_metrics.csv", index=False)
     if result.cv is not None:
         report.cv_table(result.cv, model.state_names).to_csv(folder / "cv_curve.csv", index=False)
+    if result.ensemble is not None:
+        result.inclusion_table().to_csv(folder / "inclusion_probabilities.csv", index=False)
+    for item in result.validation:
+        if "band" in item:
+            report.band_table(item, model.state_names).to_csv(
+                folder / f"band_{report.safe_name(item['run'])}.csv", index=False)
     (folder / "config_effective.toml").write_text(to_toml(result.config))
     (folder / "provenance.json").write_text(json.dumps(provenance(result), indent=2) + "\n")
     (folder / "warnings.txt").write_text("".join(f"{w}\n" for w in result.warnings))

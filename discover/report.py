@@ -40,8 +40,8 @@ def format_equation(state, kept, *, show_probability=False):
 def summary(result):
     """The text printed at the end of a run (also written as summary.txt)."""
     model = result.model
-    lines = ["Identified equations:"]
     show = "inclusion_probability" in model.term_stats
+    lines = ["Identified equations" + (" [p = inclusion probability over the bootstrap members]:" if show else ":")]
     for state, kept in model.equations():
         lines.append("  " + format_equation(state, kept, show_probability=show))
     thresholds = model.info.get("threshold", {})
@@ -58,6 +58,10 @@ def summary(result):
                 continue
             fits = ", ".join(f"{s} {f:.1f} %" for s, f in zip(model.state_names, item["metrics"]["fit_percent"]))
             lines.append(f"  {item['run']}: fit {fits}")
+            if "band_coverage" in item:
+                level = result.config["bootstrap"]["level"]
+                cover = ", ".join(f"{s} {100 * c:.0f} %" for s, c in zip(model.state_names, item["band_coverage"]))
+                lines.append(f"  {item['run']}: samples inside the {100 * level:.0f} % ensemble band: {cover}")
     for warning in result.warnings:
         lines.append(f"Warning: {warning}")
     lines.append(CAUTION)
@@ -142,8 +146,69 @@ def write_figures(result, folder):
     figures = []
     if result.cv is not None:
         figures.append(("cv_curve.png", plot_cv_curve(result.cv, result.model.state_names)))
+    if result.ensemble is not None:
+        figures.append(("inclusion_map.png", plot_inclusion_map(
+            result.library_terms, result.model.state_names, result.ensemble.summary.inclusion_probability)))
+        figures.append(("coefficient_distributions.png",
+                        plot_coefficient_distributions(result.model, result.ensemble.coef)))
     for item in result.validation:
-        figures.append((f"heldout_{safe_name(item['run'])}.png", plot_held_out(item, result.model.state_names)))
+        band = item["band"][1:] if "band" in item else None
+        figures.append((f"heldout_{safe_name(item['run'])}.png",
+                        plot_held_out(item, result.model.state_names, band=band)))
     for name, fig in figures:
         fig.savefig(folder / name, dpi=110, metadata={"Software": None})
         plt.close(fig)
+
+
+def band_table(item, state_names):
+    """Median trajectory and central band of the ensemble on one held-out run."""
+    median, low, high = item["band"]
+    table = {"t": item["t"]}
+    for i, state in enumerate(state_names):
+        table[f"{state}_measured"] = item["x"][:, i]
+        table[f"{state}_median"] = median[:, i]
+        table[f"{state}_low"] = low[:, i]
+        table[f"{state}_high"] = high[:, i]
+    return pd.DataFrame(table)
+
+
+def plot_inclusion_map(terms, state_names, probability):
+    """Term × state heat map of inclusion probabilities (grey scale, values printed)."""
+    plt = _pyplot()
+    shown = np.flatnonzero(probability.max(axis=1) > 0.0)
+    if shown.size == 0:
+        shown = np.arange(len(terms))
+    values = probability[shown]
+    fig, ax = plt.subplots(figsize=(1.6 + 1.3 * len(state_names), 0.8 + 0.28 * len(shown)))
+    image = ax.imshow(values, cmap="Greys", vmin=0.0, vmax=1.0, aspect="auto")
+    ax.set_xticks(range(len(state_names)), [f"d({s})/dt" for s in state_names])
+    ax.set_yticks(range(len(shown)), [pretty_term(terms[j]) for j in shown])
+    for (r, c), p in np.ndenumerate(values):
+        ax.text(c, r, f"{p:.2f}", ha="center", va="center", fontsize=7,
+                color="white" if p > 0.6 else "black")
+    fig.colorbar(image, ax=ax, label="inclusion probability")
+    ax.set_title("terms ever kept by a member", fontsize=9)
+    fig.tight_layout()
+    return fig
+
+
+def plot_coefficient_distributions(model, ensemble_coef):
+    """Histograms of the members' coefficients for each term of the model."""
+    plt = _pyplot()
+    pairs = [(j, i) for i in range(len(model.state_names)) for j in np.flatnonzero(model.coef[:, i])]
+    n = max(1, len(pairs))
+    cols = min(4, n)
+    rows = -(-n // cols)
+    fig, axes = plt.subplots(rows, cols, figsize=(3.0 * cols, 2.3 * rows), squeeze=False)
+    for ax in axes.ravel()[len(pairs):]:
+        ax.axis("off")
+    for ax, (j, i) in zip(axes.ravel(), pairs):
+        values = ensemble_coef[:, j, i]
+        kept = values[values != 0]
+        ax.hist(kept, bins=20, color="0.55", edgecolor="black", linewidth=0.4)
+        ax.axvline(model.coef[j, i], color="black", linestyle="--", linewidth=1.0)
+        ax.set_title(f"d({model.state_names[i]})/dt: {pretty_term(model.terms[j])}", fontsize=8)
+        ax.set_xlabel("coefficient", fontsize=8)
+        ax.tick_params(labelsize=7)
+    fig.tight_layout()
+    return fig

@@ -157,6 +157,7 @@ class BlockGrams:
     counts: np.ndarray
     runs: np.ndarray
     n_terms: int
+    positions: np.ndarray | None = None  # index of each block within its run
 
     def total(self, weights=None):
         """Weighted sum of block Grams, summed in block order (deterministic)."""
@@ -171,15 +172,16 @@ def block_grams(blocks):
 
     One product ``[Θ Ẋ]ᵀ[Θ Ẋ]`` per block: it costs about as much as ΘᵀΘ alone.
     """
-    grams, counts, runs = [], [], []
+    grams, counts, runs, positions = [], [], [], []
     n_terms = None
     for run_index, theta, x_dot in blocks:
         z = np.hstack([theta, x_dot])
         grams.append(z.T @ z)
         counts.append(len(z))
+        positions.append(positions[-1] + 1 if runs and runs[-1] == run_index else 0)
         runs.append(run_index)
         n_terms = theta.shape[1]
-    return BlockGrams(np.array(grams), np.array(counts), np.array(runs), n_terms)
+    return BlockGrams(np.array(grams), np.array(counts), np.array(runs), n_terms, np.array(positions))
 
 
 def split_gram(augmented, n_terms):

@@ -1,0 +1,346 @@
+"""Bootstrap ensembles of sparse fits: inclusion probabilities, intervals, prediction bands.
+
+The method is the ensemble approach to sparse identification (Fasel, Kutz, Brunton &
+Brunton 2022, Proc. R. Soc. A 478): fit many members on resamples of the data, count
+how often each term is kept (its inclusion probability), and take coefficient
+statistics over the members.
+
+Resampling respects time: by default a circular block bootstrap within each run
+(Politis & Romano 1992), whose blocks start on a grid of sub-blocks so that a member's
+Gram is a weighted sum of the sub-block Grams already computed (DESIGN.md, "Scale"):
+no member touches the rows again. With many runs, whole runs can be resampled
+instead. Row-wise resampling is offered only when asked for: neighbouring samples of a
+time series are nearly identical, so row resamples understate the spread.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+
+from .selection import Scale, fit_scaled, least_squares_gram, scaled_problem
+
+#: Sub-blocks per bootstrap block: block starts fall on a grid of block_length / 4.
+SUB_PER_BLOCK = 4
+#: Upper bound on the number of sub-block Grams kept in memory.
+MAX_SUB_BLOCKS = 4000
+#: Whole runs are resampled under resample = "auto" from this many training runs on.
+MIN_RUNS_FOR_RUN_RESAMPLING = 10
+RESAMPLE_SCHEMES = ("auto", "blocks", "runs", "rows")
+
+
+def correlation_length(series):
+    """Lag (in samples) where the autocorrelation first drops below 1/e.
+
+    Parameters
+    ----------
+    series : ndarray of shape (n_samples, n_columns)
+
+    Returns
+    -------
+    int
+        The largest such lag over the columns (at least 1).
+    """
+    x = series - series.mean(axis=0)
+    n = len(x)
+    spectrum = np.fft.rfft(x, n=2 * n, axis=0)
+    acf = np.fft.irfft(spectrum * np.conj(spectrum), axis=0)[:n]
+    lags = []
+    for j in range(x.shape[1]):
+        if acf[0, j] <= 0:
+            continue
+        below = np.flatnonzero(acf[:, j] / acf[0, j] < np.exp(-1.0))
+        lags.append(int(below[0]) if below.size else n)
+    return max(lags, default=1) or 1
+
+
+def block_plan(run_lengths, correlation, block_length=None):
+    """Resolve ``(sub_length, block_length)`` in samples.
+
+    The default block length is twice the correlation length of the derivative
+    signal (common practice for block bootstraps: blocks must span the dependence),
+    at least 8 samples and at most a fifth of the shortest run. Blocks are made of
+    SUB_PER_BLOCK sub-blocks, whose count is capped at MAX_SUB_BLOCKS.
+    """
+    shortest, total = min(run_lengths), sum(run_lengths)
+    if block_length is None:
+        block_length = int(np.clip(2 * correlation, 8, max(8, shortest // 5)))
+    sub_length = max(1, block_length // SUB_PER_BLOCK, -(-total // MAX_SUB_BLOCKS))
+    return sub_length, sub_length * SUB_PER_BLOCK
+
+
+def resolve_scheme(scheme, n_runs):
+    if scheme == "auto":
+        return "runs" if n_runs >= MIN_RUNS_FOR_RUN_RESAMPLING else "blocks"
+    return scheme
+
+
+def circular_block_starts(n_sub, n_draws, rng):
+    """Start sub-block of each drawn block in one run."""
+    return rng.integers(0, n_sub, size=n_draws)
+
+
+def block_indices(start, n_sub, sub_per_block=SUB_PER_BLOCK):
+    """Sub-blocks covered by a block starting at ``start`` (wrapping around the run)."""
+    return (start + np.arange(sub_per_block)) % n_sub
+
+
+def member_weights(runs, n_members, scheme, rng, sub_per_block=SUB_PER_BLOCK):
+    """Weight of each sub-block in each member.
+
+    Parameters
+    ----------
+    runs : ndarray of shape (n_blocks,)
+        Run index of each sub-block (sub-blocks of a run are contiguous and in order).
+    scheme : {"blocks", "runs"}
+
+    Returns
+    -------
+    ndarray of shape (n_members, n_blocks)
+        How many times each sub-block enters each member.
+    """
+    labels, first, counts = np.unique(runs, return_index=True, return_counts=True)
+    weights = np.zeros((n_members, len(runs)))
+    for m in range(n_members):
+        if scheme == "runs":
+            picks = rng.integers(0, len(labels), size=len(labels))
+            for r in picks:
+                weights[m, first[r]: first[r] + counts[r]] += 1
+            continue
+        for offset, n_sub in zip(first, counts):
+            n_draws = -(-n_sub // sub_per_block)
+            for start in circular_block_starts(n_sub, n_draws, rng):
+                np.add.at(weights[m], offset + block_indices(start, n_sub, sub_per_block), 1)
+    return weights
+
+
+def library_masks(n_members, n_terms, fraction, rng):
+    """Terms available to each member (library bagging); all True when fraction is 1."""
+    if fraction >= 1.0:
+        return np.ones((n_members, n_terms), dtype=bool)
+    keep = max(1, int(round(fraction * n_terms)))
+    masks = np.zeros((n_members, n_terms), dtype=bool)
+    for m in range(n_members):
+        masks[m, rng.choice(n_terms, size=keep, replace=False)] = True
+    return masks
+
+
+def fit_member(gram, count, n_terms, available, thresholds, ridge, max_iter):
+    scale = Scale.from_gram(gram, count, n_terms)
+    scale = Scale(scale.terms, scale.targets, scale.zero | ~available)
+    coef, _ = fit_scaled(gram, count, n_terms, threshold=thresholds, ridge=ridge, max_iter=max_iter, scale=scale)
+    return coef
+
+
+def _fit_batch(grams, weights, counts, n_terms, available, thresholds, ridge, max_iter):
+    out = []
+    for w, mask in zip(weights, available):
+        gram = np.tensordot(w, grams, axes=1)
+        out.append(fit_member(gram, float(w @ counts), n_terms, mask, thresholds, ridge, max_iter))
+    return out
+
+
+def fit_ensemble(block_set, weights, available, thresholds, *, ridge, max_iter, n_jobs=1, progress=False):
+    """Fit every member from its weighted sum of block Grams.
+
+    Members are fitted in batches (one joblib task per batch) and collected in member
+    order, so the result does not depend on ``n_jobs``.
+
+    Returns
+    -------
+    ndarray of shape (n_members, n_terms, n_targets)
+    """
+    from joblib import Parallel, delayed
+    from tqdm.auto import tqdm
+
+    n_members = len(weights)
+    batches = np.array_split(np.arange(n_members), min(n_members, 20))
+    tasks = (
+        delayed(_fit_batch)(block_set.grams, weights[b], block_set.counts, block_set.n_terms,
+                            available[b], thresholds, ridge, max_iter)
+        for b in batches
+    )
+    results = []
+    with tqdm(total=n_members, desc="bootstrap members", disable=not progress, leave=False) as bar:
+        for batch in Parallel(n_jobs=n_jobs, return_as="generator")(tasks):
+            results.extend(batch)
+            bar.update(len(batch))
+    return np.array(results)
+
+
+def row_weights_ensemble(pieces, n_members, rng):
+    """Row-wise bootstrap: per-member Grams from multinomial row counts (one pass per member)."""
+    grams, counts = [], []
+    z = np.vstack([np.hstack([theta, x_dot]) for _, theta, x_dot in pieces])
+    for _ in range(n_members):
+        w = np.bincount(rng.integers(0, len(z), size=len(z)), minlength=len(z)).astype(float)
+        grams.append(z.T @ (z * w[:, None]))
+        counts.append(w.sum())
+    return np.array(grams), np.array(counts)
+
+
+@dataclass(frozen=True)
+class EnsembleSummary:
+    """Per term (rows) and state (columns) statistics over the members.
+
+    ``*_kept`` statistics are over the members that keep the term (NaN when none
+    does); ``*_all`` over every member that had the term in its library, zeros included.
+    """
+
+    inclusion_probability: np.ndarray
+    median_kept: np.ndarray
+    mean_kept: np.ndarray
+    low_kept: np.ndarray
+    high_kept: np.ndarray
+    median_all: np.ndarray
+    mean_all: np.ndarray
+    low_all: np.ndarray
+    high_all: np.ndarray
+    level: float
+
+    def as_stats(self):
+        return {name: getattr(self, name) for name in self.__dataclass_fields__ if name != "level"}
+
+
+def summarize(coef, available, level=0.9):
+    """Inclusion probabilities and coefficient statistics of an ensemble.
+
+    Parameters
+    ----------
+    coef : ndarray of shape (n_members, n_terms, n_targets)
+    available : bool ndarray of shape (n_members, n_terms)
+    level : float
+        Central interval level: the interval runs from quantile (1 − level)/2 to (1 + level)/2.
+    """
+    lo_q, hi_q = (1 - level) / 2, (1 + level) / 2
+    present = np.broadcast_to(available[:, :, None], coef.shape)
+    kept = (coef != 0) & present
+    n_avail = present.sum(axis=0)
+    inclusion = kept.sum(axis=0) / np.maximum(n_avail, 1)
+    kept_values = np.where(kept, coef, np.nan)
+    all_values = np.where(present, coef, np.nan)
+    with warnings.catch_warnings():  # all-NaN columns (a term no member keeps) are expected
+        warnings.simplefilter("ignore", RuntimeWarning)
+        stats = dict(
+            median_kept=np.nanmedian(kept_values, axis=0),
+            mean_kept=np.nanmean(kept_values, axis=0),
+            low_kept=np.nanquantile(kept_values, lo_q, axis=0),
+            high_kept=np.nanquantile(kept_values, hi_q, axis=0),
+            median_all=np.nanmedian(all_values, axis=0),
+            mean_all=np.nanmean(all_values, axis=0),
+            low_all=np.nanquantile(all_values, lo_q, axis=0),
+            high_all=np.nanquantile(all_values, hi_q, axis=0),
+        )
+    return EnsembleSummary(inclusion_probability=inclusion, level=level, **stats)
+
+
+def final_coefficients(summary, total, count, n_terms, *, inclusion_min, method):
+    """Coefficients of the ensemble model.
+
+    Terms with inclusion probability >= inclusion_min are kept. ``"refit"`` fits them by
+    least squares on all training rows (so with clean data the model equals the single
+    fit); ``"bragg"`` takes the median over all members ("bragging", Fasel et al. 2022).
+    """
+    support = summary.inclusion_probability >= inclusion_min
+    if method == "bragg":
+        return np.where(support, np.nan_to_num(summary.median_all), 0.0)
+    scale = Scale.from_gram(total, count, n_terms)
+    g, b = scaled_problem(total, count, n_terms, scale)
+    return scale.to_units(least_squares_gram(g, b, support & ~scale.zero[:, None]))
+
+
+# --------------------------------------------------------------------------- prediction bands
+
+
+def ensemble_rhs(expressions, state_names, input_names, coef, limits):
+    """Vectorised right-hand side of all members at once.
+
+    Parameters
+    ----------
+    expressions : list of parsed expressions, the union of the members' terms
+    coef : ndarray of shape (n_members, n_used_terms, n_states)
+    limits : (center, half_width), each of shape (n_states,)
+
+    Returns a function ``f(X, u) -> dX`` with X of shape (n_members, n_states). Members
+    that have left the bounded region are frozen (derivative 0) so one runaway member
+    cannot stop the others.
+    """
+    center, half_width = limits
+    n_members, _, n_states = coef.shape
+
+    def rhs(x, u):
+        columns = {name: x[:, i] for i, name in enumerate(state_names)}
+        columns.update({name: np.full(n_members, u[j]) for j, name in enumerate(input_names)})
+        theta = np.empty((n_members, len(expressions)))
+        with np.errstate(all="ignore"):
+            for j, expression in enumerate(expressions):
+                theta[:, j] = expression.evaluate(columns)
+            dx = np.einsum("mk,mki->mi", theta, coef)
+        outside = ~np.all(np.isfinite(x) & (np.abs(x - center) <= half_width), axis=1)
+        dx[outside | ~np.all(np.isfinite(dx), axis=1)] = 0.0
+        return dx
+
+    return rhs
+
+
+def simulate_ensemble(expressions, state_names, input_names, coef, t, x0, u, *, interpolation,
+                      method, rtol, atol, limits):
+    """Simulate every member in one solver call.
+
+    Returns
+    -------
+    x : ndarray of shape (n_members, n_samples, n_states)
+        NaN from the first sample at which a member left the bounded region.
+    diverged : bool ndarray of shape (n_members,)
+    """
+    from .simulate import input_function
+    from scipy.integrate import solve_ivp
+
+    n_members, _, n_states = coef.shape
+    rhs = ensemble_rhs(expressions, state_names, input_names, coef, limits)
+    u_of = input_function(t, u, interpolation)
+
+    def fun(s, flat):
+        return rhs(flat.reshape(n_members, n_states), u_of(s)).ravel()
+
+    y0 = np.tile(np.asarray(x0, dtype=float), n_members)
+    with np.errstate(all="ignore"):
+        sol = solve_ivp(fun, (t[0], t[-1]), y0, method=method, t_eval=t, rtol=rtol, atol=atol)
+    # solve_ivp's y is (n_members * n_states, n_points); ours is (members, time, states).
+    x = np.full((n_members, len(t), n_states), np.nan)
+    x[:, : sol.y.shape[1]] = sol.y.T.reshape(-1, n_members, n_states).transpose(1, 0, 2)
+    center, half_width = limits
+    outside = ~np.all(np.isfinite(x) & (np.abs(x - center) <= half_width), axis=2)
+    diverged = outside.any(axis=1)
+    for m in np.flatnonzero(diverged):
+        x[m, np.argmax(outside[m]):] = np.nan
+    return x, diverged
+
+
+def prediction_band(x, diverged, level=0.9, *, noise_std=None, rng=None):
+    """Median and central prediction band over the members that did not diverge.
+
+    The band is for a *measurement*: each member's trajectory plus Gaussian measurement
+    noise of ``noise_std`` per state (estimated from the training runs as the spread
+    of raw minus smoothed states). Without noise_std it shows the coefficient
+    uncertainty alone.
+
+    Returns (median, low, high), each of shape (n_samples, n_states); NaN if every member diverged.
+    """
+    ok = x[~diverged]
+    if len(ok) == 0:
+        nan = np.full(x.shape[1:], np.nan)
+        return nan, nan, nan
+    median = np.median(ok, axis=0)
+    if noise_std is not None:
+        ok = ok + rng.standard_normal(ok.shape) * np.asarray(noise_std)[None, None, :]
+    lo_q, hi_q = (1 - level) / 2, (1 + level) / 2
+    return median, np.quantile(ok, lo_q, axis=0), np.quantile(ok, hi_q, axis=0)
+
+
+def band_coverage(measured, low, high):
+    """Share of measured samples inside the band, per state."""
+    inside = (measured >= low) & (measured <= high)
+    return inside.mean(axis=0)
