@@ -254,69 +254,47 @@ def final_coefficients(summary, total, count, n_terms, *, inclusion_min, method)
 # --------------------------------------------------------------------------- prediction bands
 
 
-def ensemble_rhs(expressions, state_names, input_names, coef, limits):
-    """Vectorised right-hand side of all members at once.
+def ensemble_rhs(expressions, state_names, input_names, coef):
+    """Vectorised right-hand side of many members at once.
 
     Parameters
     ----------
     expressions : list of parsed expressions, the union of the members' terms
     coef : ndarray of shape (n_members, n_used_terms, n_states)
-    limits : (center, half_width), each of shape (n_states,)
 
-    Returns a function ``f(X, u) -> dX`` with X of shape (n_members, n_states). Members
-    that have left the bounded region are frozen (derivative 0) so one runaway member
-    cannot stop the others.
+    Returns a function ``f(X, u, members) -> dX`` with X of shape (len(members), n_states):
+    one evaluation of each term for all members, then one batched product.
     """
-    center, half_width = limits
-    n_members, _, n_states = coef.shape
 
-    def rhs(x, u):
+    def rhs(x, u, members):
         columns = {name: x[:, i] for i, name in enumerate(state_names)}
-        columns.update({name: np.full(n_members, u[j]) for j, name in enumerate(input_names)})
-        theta = np.empty((n_members, len(expressions)))
-        with np.errstate(all="ignore"):
-            for j, expression in enumerate(expressions):
-                theta[:, j] = expression.evaluate(columns)
-            dx = np.einsum("mk,mki->mi", theta, coef)
-        outside = ~np.all(np.isfinite(x) & (np.abs(x - center) <= half_width), axis=1)
-        dx[outside | ~np.all(np.isfinite(dx), axis=1)] = 0.0
-        return dx
+        columns.update({name: np.full(len(x), u[j]) for j, name in enumerate(input_names)})
+        theta = np.empty((len(x), len(expressions)))
+        for j, expression in enumerate(expressions):
+            theta[:, j] = expression.evaluate(columns)
+        return np.einsum("mk,mki->mi", theta, coef[members])
 
     return rhs
 
 
 def simulate_ensemble(expressions, state_names, input_names, coef, t, x0, u, *, interpolation,
                       method, rtol, atol, limits):
-    """Simulate every member in one solver call.
+    """Simulate every member in one solver call (restarted only when a member escapes).
 
     Returns
     -------
     x : ndarray of shape (n_members, n_samples, n_states)
-        NaN from the first sample at which a member left the bounded region.
+        NaN from the time a member left the bounded region.
     diverged : bool ndarray of shape (n_members,)
     """
-    from .simulate import input_function
-    from scipy.integrate import solve_ivp
+    from .simulate import simulate_batch
 
-    n_members, _, n_states = coef.shape
-    rhs = ensemble_rhs(expressions, state_names, input_names, coef, limits)
-    u_of = input_function(t, u, interpolation)
-
-    def fun(s, flat):
-        return rhs(flat.reshape(n_members, n_states), u_of(s)).ravel()
-
-    y0 = np.tile(np.asarray(x0, dtype=float), n_members)
-    with np.errstate(all="ignore"):
-        sol = solve_ivp(fun, (t[0], t[-1]), y0, method=method, t_eval=t, rtol=rtol, atol=atol)
-    # solve_ivp's y is (n_members * n_states, n_points); ours is (members, time, states).
-    x = np.full((n_members, len(t), n_states), np.nan)
-    x[:, : sol.y.shape[1]] = sol.y.T.reshape(-1, n_members, n_states).transpose(1, 0, 2)
-    center, half_width = limits
-    outside = ~np.all(np.isfinite(x) & (np.abs(x - center) <= half_width), axis=2)
-    diverged = outside.any(axis=1)
-    for m in np.flatnonzero(diverged):
-        x[m, np.argmax(outside[m]):] = np.nan
-    return x, diverged
+    n_members = coef.shape[0]
+    rhs = ensemble_rhs(expressions, state_names, input_names, coef)
+    x0s = np.tile(np.asarray(x0, dtype=float), (n_members, 1))
+    x, stopped_at, _ = simulate_batch(rhs, t, x0s, u, interpolation=interpolation, method=method,
+                                      rtol=rtol, atol=atol, limits=limits)
+    return x, np.isfinite(stopped_at)
 
 
 def prediction_band(x, diverged, level=0.9, *, noise_std=None, rng=None):

@@ -57,6 +57,86 @@ def input_function(t, u, interpolation):
     return lambda s: np.array([np.interp(s, t, c) for c in columns])
 
 
+def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rtol=1e-6, atol=1e-9,
+                   limits=None):
+    """Integrate several members ``dX/dt = rhs(X, u, members)`` together in one solver.
+
+    Parameters
+    ----------
+    rhs : callable
+        ``rhs(X, u, members)`` with X of shape (n_active, n_states), u of shape
+        (n_inputs,) and ``members`` the indices of the active members; returns dX.
+    t : ndarray of shape (n_samples,)
+    x0 : ndarray of shape (n_members, n_states)
+    u : ndarray of shape (n_samples, n_inputs), or callable of time
+    limits : tuple (center, half_width) of ndarrays of shape (n_states,), optional
+        The bounded region. A member that leaves it is stopped there (a terminal
+        event), marked diverged, and the others go on from that time without it.
+
+    Returns
+    -------
+    x : ndarray of shape (n_members, n_samples, n_states)
+        NaN after a member's stop.
+    stopped_at : ndarray of shape (n_members,)
+        Time each member was stopped; NaN for members that ran to the end.
+    message : str
+        The solver's message if it failed (all remaining members then count as stopped).
+    """
+    t = np.asarray(t, dtype=float)
+    x0 = np.atleast_2d(np.asarray(x0, dtype=float))
+    n_members, n_states = x0.shape
+    u_of = input_function(t, u, interpolation)
+    x = np.full((n_members, len(t), n_states), np.nan)
+    stopped_at = np.full(n_members, np.nan)
+    active, y, start, message = np.arange(n_members), x0.ravel(), t[0], ""
+    while active.size:
+        members = active.copy()
+
+        def fun(s, flat):
+            return rhs(flat.reshape(len(members), n_states), u_of(s), members).ravel()
+
+        events = None
+        if limits is not None:
+            center, half_width = limits
+
+            def escape(s, flat):
+                state = flat.reshape(len(members), n_states)
+                if not np.all(np.isfinite(state)):
+                    return -1.0
+                return 1.0 - np.max(np.abs(state - center) / half_width)
+
+            escape.terminal = True
+            events = [escape]
+        pending = t[t >= start]
+        with np.errstate(all="ignore"):
+            sol = solve_ivp(fun, (start, t[-1]), y, method=method, t_eval=pending, rtol=rtol,
+                            atol=atol, events=events)
+        # solve_ivp returns (n_states * n_active, n_points); ours is (member, time, state).
+        done = sol.y.T.reshape(-1, len(members), n_states).transpose(1, 0, 2)
+        first = len(t) - len(pending)
+        x[np.ix_(members, np.arange(first, first + done.shape[1]))] = done
+        if sol.status == 1 and len(sol.t_events[0]):
+            start = sol.t_events[0][0]
+            at_event = sol.y_events[0][0].reshape(len(members), n_states)
+            excess = np.abs(at_event - center) / half_width
+            out = ~np.isfinite(at_event).all(axis=1) | (excess.max(axis=1) >= 1.0 - 1e-9)
+            if not out.any():
+                out = excess.max(axis=1) == excess.max()
+            stopped_at[members[out]] = start
+            active = members[~out]
+            y = at_event[~out].ravel()
+            # Samples at or after the stop are not part of the escaped trajectories.
+            x[np.ix_(members[out], np.flatnonzero(t >= start))] = np.nan
+            continue
+        if sol.status < 0:
+            message = f"the solver stopped: {sol.message}"
+            stopped_at[members] = sol.t[-1] if len(sol.t) else start
+        break
+    bad = ~np.isfinite(x).all(axis=2).all(axis=1) & np.isnan(stopped_at)
+    stopped_at[bad] = t[-1]
+    return x, stopped_at, message
+
+
 def simulate(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rtol=1e-6, atol=1e-9,
              limits=None, state_names=None):
     """Integrate ``dx/dt = rhs(x, u)`` from x0 and sample at the times ``t``.
@@ -64,7 +144,7 @@ def simulate(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rtol=1e-6
     Parameters
     ----------
     rhs : callable
-        ``rhs(x, u)`` with x of shape (n_states,), u of shape (n_inputs,).
+        ``rhs(x, u)`` with x of shape (n_states,) or (n, n_states), u of shape (n_inputs,).
     t : ndarray of shape (n_samples,)
     x0 : ndarray of shape (n_states,)
     u : ndarray of shape (n_samples, n_inputs), or callable of time
@@ -75,38 +155,21 @@ def simulate(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rtol=1e-6
     -------
     Simulation
     """
-    t = np.asarray(t, dtype=float)
     x0 = np.asarray(x0, dtype=float)
     names = state_names or [f"x{i}" for i in range(len(x0))]
-    u_of = input_function(t, u, interpolation)
-
-    def fun(s, x):
-        return rhs(x, u_of(s))
-
-    events = []
-    if limits is not None:
-        center, half_width = limits
-
-        def escape(s, x):
-            excess = np.abs(x - center) / half_width
-            return 1.0 - excess.max() if np.all(np.isfinite(x)) else -1.0
-
-        escape.terminal = True
-        events.append(escape)
-    with np.errstate(all="ignore"):
-        sol = solve_ivp(fun, (t[0], t[-1]), x0, method=method, t_eval=t, rtol=rtol, atol=atol,
-                        events=events or None)
-    # solve_ivp returns (n_states, n_points); our convention is rows = time.
-    x = np.full((len(t), len(x0)), np.nan)
-    x[: sol.y.shape[1]] = sol.y.T
-    if sol.status == 1:
-        t_stop = sol.t_events[0][0] if len(sol.t_events[0]) else sol.t[-1]
-        last = x[: sol.y.shape[1]][-1] if sol.y.shape[1] else x0
-        state = names[int(np.nanargmax(np.abs(last - center) / half_width))] if limits else names[0]
-        return Simulation(t, x, True, DIVERGED.format(t=t_stop, state=state))
-    if sol.status < 0 or not np.isfinite(x).all():
-        return Simulation(t, x, True, f"the solver stopped: {sol.message}")
-    return Simulation(t, x, False, "")
+    x, stopped_at, message = simulate_batch(
+        lambda X, u_now, members: np.atleast_2d(rhs(X[0], u_now)), t, x0[None, :], u,
+        interpolation=interpolation, method=method, rtol=rtol, atol=atol, limits=limits,
+    )
+    x = x[0]
+    if message:
+        return Simulation(np.asarray(t, dtype=float), x, True, message)
+    if np.isfinite(stopped_at[0]):
+        last = x[np.isfinite(x).all(axis=1)][-1] if np.isfinite(x).all(axis=1).any() else x0
+        center, half_width = limits if limits is not None else (np.zeros_like(x0), np.ones_like(x0))
+        state = names[int(np.argmax(np.abs(last - center) / half_width))]
+        return Simulation(np.asarray(t, dtype=float), x, True, DIVERGED.format(t=stopped_at[0], state=state))
+    return Simulation(np.asarray(t, dtype=float), x, False, "")
 
 
 def fit_metrics(measured, simulated):

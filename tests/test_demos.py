@@ -16,6 +16,7 @@ import discover
 from data_demo.make_bioreactor import TRUE_COEFFICIENTS as BIOREACTOR_TRUTH
 from data_demo.make_ship import TRUE_COEFFICIENTS as SHIP_TRUTH
 from discover.cli import main
+from discover.terms import term_key
 from systems import coefficient_map, truth_map
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -46,18 +47,35 @@ def test_held_out_fit_above_90_percent(demo):
         assert np.all(item["metrics"]["fit_percent"] > 90.0), item["metrics"]["fit_percent"]
 
 
+def test_bioreactor_products_have_high_inclusion_probability():
+    # The light·nitrate·biomass growth product and the dilution·biomass washout of the
+    # demo's true model (data_demo/make_bioreactor.py) are kept by >= 90 % of the members.
+    result = discover.run(ROOT / "configs" / "bioreactor.toml")
+    p = result.ensemble.summary.inclusion_probability
+    keys = [term_key(t) for t in result.library_terms]
+    biomass = result.model.state_names.index("biomass")
+    assert p[keys.index(term_key("light*nitrate*biomass")), biomass] >= 0.9
+    assert p[keys.index(term_key("dilution*biomass")), biomass] >= 0.9
+
+
 def test_cli_writes_output_folder_and_refuses_to_overwrite(tmp_path, capsys):
     out = tmp_path / "ship"
     assert main(["run", str(ROOT / "configs" / "ship.toml"), "--out", str(out)]) == 0
     printed = capsys.readouterr().out
     assert "d(yaw_rate)/dt = " in printed and "fit heading" in printed and "Caution" in printed
     expected = {"model.json", "coefficients.csv", "heldout_metrics.csv", "cv_curve.csv", "cv_curve.png",
-                "heldout_heldout_sine.png", "config_effective.toml", "provenance.json", "summary.txt"}
+                "heldout_heldout_sine.png", "config_effective.toml", "provenance.json", "summary.txt",
+                "inclusion_probabilities.csv", "inclusion_map.png", "coefficient_distributions.png",
+                "band_heldout_sine.csv"}
     assert expected <= {p.name for p in out.iterdir()}
     first = (out / "model.json").read_bytes()
     document = json.loads(first)
     assert document["format"] == "discover-model/1"
     assert document["states"] == ["heading", "yaw_rate"] and document["inputs"] == ["rudder"]
+    for equation in document["equations"]:
+        for term in equation["terms"]:
+            assert 0.5 <= term["inclusion_probability"] <= 1.0
+            assert term["coefficient_low"] <= term["coefficient"] <= term["coefficient_high"]
 
     # Without --force an existing folder is kept as it is (exit status 6, one line).
     assert main(["run", str(ROOT / "configs" / "ship.toml"), "--out", str(out)]) == 6
