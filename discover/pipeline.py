@@ -463,7 +463,7 @@ def coefficient_table(model):
 
 def default_output_dir(config):
     if config["output"]["dir"] is not None:
-        return Path(config["_base"]) / config["output"]["dir"]
+        return Path(os.path.normpath(Path(config["_base"]) / config["output"]["dir"]))
     stem = Path(config["_source"]).stem if config["_source"] != "config" else "run"
     return Path("out") / stem
 
