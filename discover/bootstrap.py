@@ -163,7 +163,8 @@ def fit_ensemble(block_set, weights, available, thresholds, *, ridge, max_iter, 
         for b in batches
     )
     results = []
-    with tqdm(total=n_members, desc="bootstrap members", disable=not progress, leave=False) as bar:
+    # disable=None: a bar on a terminal only, none in logs.
+    with tqdm(total=n_members, desc="bootstrap members", disable=None if progress else True, leave=False) as bar:
         for batch in Parallel(n_jobs=n_jobs, return_as="generator")(tasks):
             results.extend(batch)
             bar.update(len(batch))

@@ -9,6 +9,7 @@ from __future__ import annotations
 import difflib
 import glob
 import keyword
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -63,7 +64,7 @@ def resolve_files(patterns, base, where):
     """Expand glob patterns (relative to ``base``) into a sorted list of files."""
     files = []
     for pattern in patterns:
-        full = pattern if Path(pattern).is_absolute() else str(Path(base) / pattern)
+        full = pattern if Path(pattern).is_absolute() else os.path.normpath(Path(base) / pattern)
         matches = sorted(glob.glob(full))
         if not matches:
             raise DataError(f"{where}: [data].files pattern {pattern!r} matches no file (looked in {base}).")
