@@ -11,6 +11,7 @@ EXAMPLES = """\
 examples:
   discover run configs/ship.toml                 identify the ship-steering demo
   discover run configs/bioreactor.toml --out out/bio --force
+  discover rank out/ship more_hypotheses.toml    score extra structures, no refit of the rest
   discover simulate out/ship/model.json data_demo/ship/heldout_sine.csv
 
 A failure caused by the input (config, data, model file) prints one line and exits
@@ -33,6 +34,14 @@ def build_parser():
     run.add_argument("config", help="path to the TOML config")
     run.add_argument("--out", help="output folder (default: [output].dir, else out/<config name>)")
     run.add_argument("--force", action="store_true", help="replace an existing output folder")
+    rank = sub.add_parser("rank", help="score extra hypotheses against an earlier run's ranking",
+                          description="Fit and score the [[ranking.hypotheses]] of a TOML file on the "
+                                      "training and held-out runs of an earlier output folder, without "
+                                      "refitting the candidates already ranked there.")
+    rank.add_argument("out_dir", help="output folder of an earlier 'discover run'")
+    rank.add_argument("hypotheses", help="TOML file with [[ranking.hypotheses]] entries")
+    rank.add_argument("--save", help="where to write the combined table "
+                                     "(default: OUT_DIR/ranking_updated.csv)")
     sim = sub.add_parser("simulate", help="simulate a saved model on a run's recorded input",
                          description="Simulate model.json from the first sample of a run file, "
                                      "with that run's recorded input, and print the fit.")
@@ -51,6 +60,24 @@ def _run(args):
     target = write_outputs(result, args.out, force=args.force)
     print(summary(result))
     print(f"Output written to {target}")
+
+
+def _rank(args):
+    import os
+    import tempfile
+    from pathlib import Path
+
+    from .pipeline import rank_more
+    from .report import ranking_lines
+
+    table = rank_more(args.out_dir, args.hypotheses)
+    target = Path(args.save) if args.save else Path(args.out_dir) / "ranking_updated.csv"
+    handle, temporary = tempfile.mkstemp(prefix=".ranking-", dir=target.parent)
+    os.close(handle)
+    table.to_csv(temporary, index=False)
+    os.replace(temporary, target)
+    print("\n".join(ranking_lines(table, "aicc", top=12)))
+    print(f"Combined ranking written to {target}")
 
 
 def _simulate(args):
@@ -76,7 +103,7 @@ def main(argv=None):
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
-        {"run": _run, "simulate": _simulate}[args.command](args)
+        {"run": _run, "rank": _rank, "simulate": _simulate}[args.command](args)
     except DiscoverError as err:
         if args.debug:
             raise

@@ -108,6 +108,16 @@ SCHEMA = {
         "atol": Key("float", 1e-9, minimum=0.0),
         "divergence_factor": Key("float", 100.0, minimum=1.0),
     },
+    "ranking": {
+        "enabled": Key("bool", True),
+        "criterion": Key("str", "aicc", choices=("aicc", "aic", "bic", "simulation_error", "derivative_error")),
+        "path": Key("bool", True),
+        "sr3": Key("bool", True),
+        "top": Key("int", 3, minimum=1, maximum=10),
+        # Arrays of tables, checked in _check_ranking:
+        "libraries": Key("table_list", []),
+        "hypotheses": Key("table_list", []),
+    },
     "output": {
         "dir": Key("str", None, nullable=True),
         "figures": Key("bool", True),
@@ -220,6 +230,7 @@ def _describe(spec):
         "str_list": "a list of strings",
         "float_list": "a list of numbers",
         "table": "a table of name = \"column\" pairs",
+        "table_list": "an array of tables ([[...]] entries)",
     }[spec.kind]
     if spec.odd:
         words = "an odd int"
@@ -259,6 +270,10 @@ def _check_value(where, section, key, spec, value):
         if not isinstance(value, dict) or not all(isinstance(v, str) for v in value.values()):
             fail()
         return dict(value)
+    if kind == "table_list":
+        if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
+            fail()
+        return [dict(v) for v in value]
     if kind == "str_list":
         if isinstance(value, str):
             value = [value]
@@ -314,6 +329,7 @@ def _check_relations(where, config):
         default_trim(deriv["method"], {k: v for k, v in deriv.items() if k not in ("method", "trim")})
     except ConfigError as err:
         raise ConfigError(f"{where}: {err}") from None
+    _check_ranking(where, config)
     known = set(data["states"]) | set(data["inputs"])
     for key in ("variables", "trig_variables"):
         for name in terms[key] or []:
@@ -366,5 +382,57 @@ def _toml_value(value):
     if isinstance(value, list):
         return "[" + ", ".join(_toml_value(v) for v in value) + "]"
     if isinstance(value, dict):
-        return "{" + ", ".join(f"{_toml_value(k)} = {_toml_value(v)}" for k, v in value.items()) + "}"
+        items = [(k, v) for k, v in value.items() if v is not None]
+        return "{" + ", ".join(f"{_toml_value(k)} = {_toml_value(v)}" for k, v in items) + "}"
     raise TypeError(value)
+
+
+def _check_ranking(where, config):
+    """Validate [[ranking.libraries]] (keys of [terms] plus a name) and
+    [[ranking.hypotheses]] (a name plus, per state, a list of term expressions)."""
+    from .expressions import parse_expression
+
+    ranking, data = config["ranking"], config["data"]
+    known = list(data["states"]) + list(data["inputs"])
+    names = []
+    for kind in ("libraries", "hypotheses"):
+        checked = []
+        for n, entry in enumerate(ranking[kind], start=1):
+            name = entry.get("name")
+            label = f"[[ranking.{kind}]] #{n}"
+            if not isinstance(name, str) or not name.strip():
+                raise ConfigError(f"{where}: {label} needs a name = \"...\".")
+            if name in names:
+                raise ConfigError(f"{where}: {label}: the name {name!r} is used twice.")
+            names.append(name)
+            label = f"[[ranking.{kind}]] {name!r}"
+            if kind == "libraries":
+                table = {"name": name}
+                for key, value in entry.items():
+                    if key == "name":
+                        continue
+                    if key not in SCHEMA["terms"]:
+                        _unknown(where, f"ranking.libraries {name!r}", key, list(SCHEMA["terms"]) + ["name"])
+                    table[key] = _check_value(where, f"ranking.libraries {name!r}", key, SCHEMA["terms"][key], value)
+                for key, spec in SCHEMA["terms"].items():
+                    table.setdefault(key, spec.default)
+                checked.append(table)
+                continue
+            table = {"name": name}
+            for key, value in entry.items():
+                if key == "name":
+                    continue
+                if key not in data["states"]:
+                    _unknown(where, f"ranking.hypotheses {name!r}", key, list(data["states"]) + ["name"])
+                if isinstance(value, str):
+                    value = [value]
+                if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+                    raise ConfigError(f"{where}: {label}.{key} must be a list of term expressions. Got {value!r}.")
+                for m, text in enumerate(value):
+                    parse_expression(text, known, where=f"{where}: {label}.{key}[{m}]")
+                table[key] = list(value)
+            if len(table) == 1:
+                raise ConfigError(f"{where}: {label} lists no equation; give terms for at least one state, "
+                                  f"e.g. {data['states'][0]} = [\"...\"].")
+            checked.append(table)
+        ranking[kind] = checked

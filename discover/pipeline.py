@@ -21,7 +21,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from . import bootstrap, report
+from . import bootstrap, ranking, report
 from .config import load_config, threshold_grid, to_toml
 from .data import load_dataset
 from .derivatives import DERIVATIVE_METHODS, default_trim, min_samples
@@ -37,7 +37,7 @@ from .selection import (
     fit_scaled,
 )
 from .simulate import fit_metrics, guess_interpolation
-from .terms import build_library
+from .terms import build_library, term_key
 
 SHORT_RUN = 50  # fewer usable samples than this in a run earns a warning
 
@@ -69,6 +69,8 @@ class Result:
     warnings: list = field(default_factory=list)
     single_model: Model | None = None
     ensemble: object = None
+    ranking: object = None
+    candidates: list = field(default_factory=list)
     output_dir: Path | None = None
 
     def validation_table(self):
@@ -137,8 +139,9 @@ def differentiate(dataset, config):
     return result
 
 
-def library_from_config(config):
-    terms = config["terms"]
+def library_from_config(config, terms=None, label="[terms]"):
+    """The candidate library of ``[terms]`` (or of another table with the same keys)."""
+    terms = config["terms"] if terms is None else terms
     data = config["data"]
     return build_library(
         data["states"],
@@ -152,7 +155,7 @@ def library_from_config(config):
         trig_frequencies=terms["trig_frequencies"],
         trig_input_products=terms["trig_input_products"],
         custom=terms["custom"],
-        where=f"{config['_source']}: [terms]",
+        where=f"{config['_source']}: {label}",
     )
 
 
@@ -311,6 +314,13 @@ def run(source, *, progress=False):
     validation = validate_held_out(config, model, held_smoothed, held_out, limits)
     if ensemble is not None and config["bootstrap"]["bands"]:
         add_prediction_bands(config, model, ensemble, validation, limits, measurement_noise(smoothed))
+    ranking_table, candidates = None, []
+    if config["ranking"]["enabled"]:
+        candidates = collect_candidates(config, model, blocks, pieces, library, smoothed, cv)
+        ranking_table = rank(config, candidates, model, held_out, held_out_smoothed(config, held_out),
+                             limits, ensemble, library)
+        if not held_out.runs:
+            warnings.append("The ranking scored candidates on the training runs (no run is held out).")
     warnings = data_warnings(training) + warnings
     for item in validation:
         if item["simulation"].diverged:
@@ -323,7 +333,74 @@ def run(source, *, progress=False):
     if not held_out.runs:
         warnings.append("No run is held out: the model is not validated on unseen data.")
     return Result(config, model, library.names, cv, training, held_out, smoothed, validation, warnings,
-                  single_model=single, ensemble=ensemble)
+                  single_model=single, ensemble=ensemble, ranking=ranking_table, candidates=candidates)
+
+
+def held_out_smoothed(config, held_out):
+    """(trimmed smoothed run, smoothed initial state) for each held-out run."""
+    if not held_out.runs:
+        return []
+    trimmed = differentiate(held_out, config)
+    untrimmed = differentiate(held_out, dict(config, derivatives=dict(config["derivatives"], trim=0)))
+    return [(s, u.x[0]) for s, u in zip(trimmed, untrimmed)]
+
+
+def hypothesis_candidate(config, hypothesis, model, smoothed):
+    """A user's term set, fitted by least squares; states it leaves out keep the model's terms."""
+    data = config["data"]
+    per_state = []
+    for i, state in enumerate(data["states"]):
+        if state in hypothesis:
+            per_state.append(hypothesis[state])
+        else:
+            per_state.append([model.terms[j] for j in np.flatnonzero(model.coef[:, i])])
+    texts = list(dict.fromkeys(t for terms in per_state for t in terms))
+    library = build_library(data["states"], data["inputs"], degree=0, constant=False, custom=texts,
+                            where=f"{config['_source']}: [[ranking.hypotheses]] {hypothesis['name']!r}")
+    keys = [term_key(t) for t in library.names]
+    support = np.zeros((len(library), len(per_state)), dtype=bool)
+    for i, terms in enumerate(per_state):
+        for t in terms:
+            support[keys.index(term_key(t)), i] = True
+    return ranking.least_squares_candidate(f"hypothesis {hypothesis['name']!r}", "hypothesis", library,
+                                           support, smoothed)
+
+
+def collect_candidates(config, model, blocks, pieces, library, smoothed, cv):
+    """The model itself, the threshold path, other libraries, user hypotheses and SR3."""
+    sel, rank_cfg = config["selection"], config["ranking"]
+    grid = threshold_grid(sel)
+    # Order matters for names: a duplicate term set keeps the first name (user's names first).
+    candidates = [ranking.Candidate("model", "model", model.terms, model.coef)]
+    for hypothesis in rank_cfg["hypotheses"]:
+        candidates.append(hypothesis_candidate(config, hypothesis, model, smoothed))
+    if rank_cfg["path"]:
+        candidates += ranking.path_candidates(blocks, library, grid, ridge=sel["ridge"],
+                                              max_iter=sel["max_iter"], label="path")
+    for table in rank_cfg["libraries"]:
+        other = library_from_config(config, table, label=f"[[ranking.libraries]] {table['name']!r}")
+        other_blocks, _ = regression_blocks(smoothed, other, max(1, blocks.counts.min()), sel["cv_folds"])
+        coef, *_ = select_model(config, other_blocks, other)
+        candidates.append(ranking.Candidate(f"library {table['name']!r} (cv)", "library", tuple(other.names), coef))
+        candidates += ranking.path_candidates(other_blocks, other, grid, ridge=sel["ridge"],
+                                              max_iter=sel["max_iter"], label=f"library {table['name']!r}")
+    if rank_cfg["sr3"]:
+        candidates += ranking.sr3_candidates(pieces, library, grid)
+    return ranking.merge_duplicates(candidates, model.state_names)
+
+
+def rank(config, candidates, model, held_out, held_smoothed, limits, ensemble, library):
+    """Score candidates on the held-out runs (training runs if none) and order them."""
+    runs, smoothed = held_out.runs, held_smoothed
+    if not runs:
+        raise DataError(f"{config['_source']}: ranking needs a held-out run; set [data].held_out "
+                        "or held_out_count, or [ranking].enabled = false.")
+    inclusion = ensemble.summary.inclusion_probability if ensemble is not None else None
+    scores = ranking.score_candidates(
+        candidates, model.state_names, model.input_names, runs, smoothed,
+        simulation=config["simulation"], limits=limits, inclusion=inclusion, library_terms=library.names,
+    )
+    return ranking.score_table(candidates, scores, config["ranking"]["criterion"])
 
 
 @dataclass(frozen=True)
@@ -442,6 +519,7 @@ def provenance(result):
     runs = list(result.training.runs) + list(result.held_out.runs)
     return {
         "config_source": result.config["_source"],
+        "config_base": result.config["_base"],
         "seed": result.config["seed"],
         "data_files": [
             {"run": r.name, "path": r.source, "sha256": file_hash(r.source), "role":
@@ -459,6 +537,15 @@ def coefficient_table(model):
         for expr, coefficient, stats in kept:
             rows.append({"state": state, "term": expr, "coefficient": coefficient, **stats})
     return pd.DataFrame(rows, columns=["state", "term", "coefficient"] + sorted(model.term_stats))
+
+
+def candidates_document(result):
+    """Every ranked candidate as a model document, so ``discover rank`` can rescore cheaply."""
+    models = []
+    for c in result.candidates:
+        m = Model(result.model.state_names, result.model.input_names, c.terms, c.coef)
+        models.append({"name": c.name, "source": c.source, "also": list(c.also), **m.to_dict()})
+    return {"format": "discover-candidates/1", "candidates": models}
 
 
 def default_output_dir(config):
@@ -507,6 +594,9 @@ def _write_all(result, folder):
         report.cv_table(result.cv, model.state_names).to_csv(folder / "cv_curve.csv", index=False)
     if result.ensemble is not None:
         result.inclusion_table().to_csv(folder / "inclusion_probabilities.csv", index=False)
+    if result.ranking is not None:
+        result.ranking.to_csv(folder / "ranking.csv", index=False)
+        (folder / "candidates.json").write_text(json.dumps(candidates_document(result), indent=1) + "\n")
     for item in result.validation:
         if "band" in item:
             report.band_table(item, model.state_names).to_csv(
@@ -517,3 +607,55 @@ def _write_all(result, folder):
     (folder / "summary.txt").write_text(report.summary(result) + "\n")
     if result.config["output"]["figures"]:
         report.write_figures(result, folder)
+
+
+def rank_more(out_dir, hypotheses_path, *, criterion=None):
+    """Score extra hypotheses against an earlier run's ranking without refitting the rest.
+
+    Reads ``config_effective.toml``, ``provenance.json``, ``model.json`` and
+    ``ranking.csv`` from ``out_dir``; fits and scores only the new hypotheses (on the
+    same training and held-out runs) and returns the combined, re-ordered table.
+    """
+    import tomllib
+
+    from .config import validate
+    from .exceptions import ConfigError
+    from .model import load_model
+
+    out_dir, hypotheses_path = Path(out_dir), Path(hypotheses_path)
+    needed = ["config_effective.toml", "provenance.json", "model.json", "ranking.csv"]
+    missing = [name for name in needed if not (out_dir / name).exists()]
+    if missing:
+        raise OutputError(f"{out_dir}: not a discover output folder with a ranking (missing {', '.join(missing)}).")
+    raw = tomllib.loads((out_dir / "config_effective.toml").read_text())
+    try:
+        extra = tomllib.loads(hypotheses_path.read_text())
+    except FileNotFoundError:
+        raise ConfigError(f"{hypotheses_path}: file not found.") from None
+    except tomllib.TOMLDecodeError as err:
+        raise ConfigError(f"{hypotheses_path}: not valid TOML: {err}.") from None
+    unknown = sorted(set(extra) - {"ranking"}) or sorted(set(extra.get("ranking", {})) - {"hypotheses"})
+    if unknown or not extra.get("ranking", {}).get("hypotheses"):
+        raise ConfigError(f"{hypotheses_path}: expected only [[ranking.hypotheses]] entries"
+                          + (f"; found {unknown}." if unknown else "; found none."))
+    raw.setdefault("ranking", {})["hypotheses"] = extra["ranking"]["hypotheses"]
+    config = validate(raw, str(hypotheses_path))
+    config["_source"] = str(hypotheses_path)
+    config["_base"] = json.loads((out_dir / "provenance.json").read_text())["config_base"]
+    criterion = criterion or config["ranking"]["criterion"]
+    old = pd.read_csv(out_dir / "ranking.csv", keep_default_na=False, na_values=[""])
+    clash = sorted(set(f"hypothesis {h['name']!r}" for h in config["ranking"]["hypotheses"]) & set(old["candidate"]))
+    if clash:
+        raise ConfigError(f"{hypotheses_path}: {clash} are already in {out_dir / 'ranking.csv'}; rename them.")
+    training, held_out = load_dataset(config)
+    model = load_model(out_dir / "model.json")
+    smoothed = differentiate(training, config)
+    candidates = [hypothesis_candidate(config, h, model, smoothed) for h in config["ranking"]["hypotheses"]]
+    limits = state_limits(training, config["simulation"]["divergence_factor"])
+    scores = ranking.score_candidates(candidates, model.state_names, model.input_names, held_out.runs,
+                                      held_out_smoothed(config, held_out), simulation=config["simulation"],
+                                      limits=limits)
+    new = ranking.score_table(candidates, scores, criterion)
+    combined = pd.concat([old, new], ignore_index=True)
+    combined["also"] = combined["also"].fillna("")
+    return ranking.order_table(combined, criterion)

@@ -62,6 +62,8 @@ def summary(result):
                 level = result.config["bootstrap"]["level"]
                 cover = ", ".join(f"{s} {100 * c:.0f} %" for s, c in zip(model.state_names, item["band_coverage"]))
                 lines.append(f"  {item['run']}: samples inside the {100 * level:.0f} % ensemble band: {cover}")
+    if result.ranking is not None:
+        lines += ranking_lines(result.ranking, result.config["ranking"]["criterion"])
     for warning in result.warnings:
         lines.append(f"Warning: {warning}")
     lines.append(CAUTION)
@@ -151,6 +153,10 @@ def write_figures(result, folder):
             result.library_terms, result.model.state_names, result.ensemble.summary.inclusion_probability)))
         figures.append(("coefficient_distributions.png",
                         plot_coefficient_distributions(result.model, result.ensemble.coef)))
+    if result.ranking is not None and len(result.ranking):
+        figures.append(("ranking_pareto.png", plot_pareto(result.ranking)))
+        if result.validation:
+            figures.append(("ranking_top.png", plot_top_candidates(result, result.config["ranking"]["top"])))
     for item in result.validation:
         band = item["band"][1:] if "band" in item else None
         figures.append((f"heldout_{safe_name(item['run'])}.png",
@@ -210,5 +216,72 @@ def plot_coefficient_distributions(model, ensemble_coef):
         ax.set_title(f"d({model.state_names[i]})/dt: {pretty_term(model.terms[j])}", fontsize=8)
         ax.set_xlabel("coefficient", fontsize=8)
         ax.tick_params(labelsize=7)
+    fig.tight_layout()
+    return fig
+
+
+def ranking_lines(table, criterion, top=8):
+    """The ranking as aligned text lines (the CSV holds every column)."""
+    from .ranking import why_chosen
+
+    lines = [f"Ranking of {len(table)} candidate structures on the held-out runs (by {criterion}; "
+             "ΔAICc ≤ 2 substantial support, > 10 essentially none):",
+             f"  {'rank':>4} {'terms':>5} {'ΔAICc':>9} {'weight':>6} {'sim. error':>10}  {'support':<16} candidate"]
+    for _, row in table.head(top).iterrows():
+        flag = " (Pareto)" if row["pareto"] else ""
+        lines.append(f"  {row['rank']:>4} {row['n_terms']:>5} {row['delta_aicc']:>9.1f} {row['akaike_weight']:>6.2f} "
+                     f"{row['simulation_error']:>10.4f}  {row['support']:<16} {row['candidate']}{flag}")
+    if len(table) > top:
+        lines.append(f"  ... {len(table) - top} more in ranking.csv")
+    lines.append("  " + why_chosen(table, criterion))
+    return lines
+
+
+def plot_pareto(table):
+    """Complexity against held-out simulation error, Pareto front joined, ΔAICc labelled."""
+    plt = _pyplot()
+    fig, ax = plt.subplots(figsize=(6.4, 4.2))
+    ok = np.isfinite(table["simulation_error"])
+    ax.scatter(table["n_terms"][ok], table["simulation_error"][ok], color="0.6", edgecolor="black",
+               s=28, label="candidate", zorder=2)
+    front = table[table["pareto"] & ok].sort_values("n_terms")
+    ax.plot(front["n_terms"], front["simulation_error"], color="black", marker="s", markersize=5,
+            label="Pareto front", zorder=3)
+    for _, row in table[ok].head(6).iterrows():
+        ax.annotate(f"#{row['rank']} Δ={row['delta_aicc']:.0f}", (row["n_terms"], row["simulation_error"]),
+                    textcoords="offset points", xytext=(5, 4), fontsize=7)
+    ax.set_yscale("log")
+    ax.set_xlabel("number of terms")
+    ax.set_ylabel("held-out simulation error (mean NRMSE)")
+    ax.legend(fontsize=8)
+    fig.tight_layout()
+    return fig
+
+
+def plot_top_candidates(result, top):
+    """Held-out trajectories of the best-ranked candidates (first held-out run)."""
+    from .model import Model
+
+    plt = _pyplot()
+    item = result.validation[0]
+    names = result.model.state_names
+    by_name = {c.name: c for c in result.candidates}
+    fig, axes = plt.subplots(len(names), 1, figsize=(7, 2.2 * len(names) + 0.6), sharex=True, squeeze=False)
+    styles = ["-", "--", ":", "-.", (0, (5, 1)), (0, (1, 1))]
+    for i, ax in enumerate(axes[:, 0]):
+        ax.plot(item["t"], item["x"][:, i], color="0.7", linewidth=2.0, label="measured")
+        ax.set_ylabel(names[i])
+    sim = result.config["simulation"]
+    for n, (_, row) in enumerate(result.ranking.head(top).iterrows()):
+        c = by_name[row["candidate"]]
+        model = Model(names, result.model.input_names, c.terms, c.coef)
+        traj = model.simulate(item["t"], item["x0"], item["u"], interpolation=item["interpolation"],
+                              method=sim["method"], rtol=sim["rtol"], atol=sim["atol"])
+        for i, ax in enumerate(axes[:, 0]):
+            ax.plot(item["t"], traj.x[:, i], color="black", linestyle=styles[n % len(styles)], linewidth=1.0,
+                    label=f"#{row['rank']} {row['candidate']}")
+    axes[0, 0].legend(fontsize=7, loc="best")
+    axes[-1, 0].set_xlabel("time")
+    fig.suptitle(f"top candidates on held-out run {item['run']}", fontsize=10)
     fig.tight_layout()
     return fig
