@@ -114,6 +114,8 @@ SCHEMA = {
         "path": Key("bool", True),
         "sr3": Key("bool", True),
         "top": Key("int", 3, minimum=1, maximum=10),
+        # Score on segments of this many time units, each from the measured state (None: whole runs).
+        "horizon": Key("float", None, minimum=0.0, nullable=True),
         # Arrays of tables, checked in _check_ranking:
         "libraries": Key("table_list", []),
         "hypotheses": Key("table_list", []),

@@ -317,8 +317,8 @@ def run(source, *, progress=False):
     ranking_table, candidates = None, []
     if config["ranking"]["enabled"]:
         candidates = collect_candidates(config, model, blocks, pieces, library, smoothed, cv)
-        ranking_table = rank(config, candidates, model, held_out, held_out_smoothed(config, held_out),
-                             limits, ensemble, library)
+        ranking_table = rank(config, candidates, model, training, held_out,
+                             held_out_smoothed(config, held_out), limits, ensemble, library)
         if not held_out.runs:
             warnings.append("The ranking scored candidates on the training runs (no run is held out).")
     warnings = data_warnings(training) + warnings
@@ -337,12 +337,12 @@ def run(source, *, progress=False):
 
 
 def held_out_smoothed(config, held_out):
-    """(trimmed smoothed run, smoothed initial state) for each held-out run."""
+    """(trimmed smoothed run, smoothed states on every sample) for each held-out run."""
     if not held_out.runs:
         return []
     trimmed = differentiate(held_out, config)
     untrimmed = differentiate(held_out, dict(config, derivatives=dict(config["derivatives"], trim=0)))
-    return [(s, u.x[0]) for s, u in zip(trimmed, untrimmed)]
+    return [(s, u.x) for s, u in zip(trimmed, untrimmed)]
 
 
 def hypothesis_candidate(config, hypothesis, model, smoothed):
@@ -389,16 +389,16 @@ def collect_candidates(config, model, blocks, pieces, library, smoothed, cv):
     return ranking.merge_duplicates(candidates, model.state_names)
 
 
-def rank(config, candidates, model, held_out, held_smoothed, limits, ensemble, library):
+def rank(config, candidates, model, training, held_out, held_smoothed, limits, ensemble, library):
     """Score candidates on the held-out runs (training runs if none) and order them."""
     runs, smoothed = held_out.runs, held_smoothed
-    if not runs:
-        raise DataError(f"{config['_source']}: ranking needs a held-out run; set [data].held_out "
-                        "or held_out_count, or [ranking].enabled = false.")
+    if not runs:  # scored on the training runs instead; run() warns about it
+        runs, smoothed = training.runs, held_out_smoothed(config, training)
     inclusion = ensemble.summary.inclusion_probability if ensemble is not None else None
     scores = ranking.score_candidates(
         candidates, model.state_names, model.input_names, runs, smoothed,
         simulation=config["simulation"], limits=limits, inclusion=inclusion, library_terms=library.names,
+        horizon=config["ranking"]["horizon"],
     )
     return ranking.score_table(candidates, scores, config["ranking"]["criterion"])
 
@@ -654,7 +654,7 @@ def rank_more(out_dir, hypotheses_path, *, criterion=None):
     limits = state_limits(training, config["simulation"]["divergence_factor"])
     scores = ranking.score_candidates(candidates, model.state_names, model.input_names, held_out.runs,
                                       held_out_smoothed(config, held_out), simulation=config["simulation"],
-                                      limits=limits)
+                                      limits=limits, horizon=config["ranking"]["horizon"])
     new = ranking.score_table(candidates, scores, criterion)
     combined = pd.concat([old, new], ignore_index=True)
     combined["also"] = combined["also"].fillna("")

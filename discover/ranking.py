@@ -260,19 +260,34 @@ def sr3_candidates(pieces, library, thresholds):
 # --------------------------------------------------------------------------- scoring
 
 
+def simulation_segments(t, horizon):
+    """Row indices of consecutive segments of at most ``horizon`` time units (one if None).
+
+    Short segments, each started from the measured state, let chaotic systems be
+    compared over the time their trajectories stay predictable (Mangan et al. 2017
+    score the Lorenz system on many short simulations).
+    """
+    if horizon is None:
+        return [np.arange(len(t))]
+    labels = np.floor((t - t[0]) / horizon).astype(int)
+    return [rows for rows in np.split(np.arange(len(t)), np.flatnonzero(np.diff(labels)) + 1) if len(rows) > 1]
+
+
 def score_candidates(candidates, state_names, input_names, runs, smoothed, *, simulation, limits,
-                     inclusion=None, library_terms=None):
+                     inclusion=None, library_terms=None, horizon=None):
     """Score every candidate on the same runs.
 
     Parameters
     ----------
     runs : sequence of data.Run
-        The runs scored on (held-out runs), simulated from ``x0`` of each with its input.
-    smoothed : sequence of pipeline.Smoothed
-        The same runs after the derivative stage (trimmed), for one-step derivative errors,
-        and (untrimmed first sample) the initial states: pairs ``(trimmed, x0)``.
+        The runs scored on (held-out runs), simulated with their recorded inputs.
+    smoothed : sequence of (pipeline.Smoothed, ndarray)
+        For each run: its derivative-stage result (trimmed), for one-step derivative
+        errors, and its smoothed states on every sample, where simulations start.
     simulation : dict
         The ``[simulation]`` config section (method, tolerances, interpolation).
+    horizon : float or None
+        Simulate segments of this length, each from the smoothed measured state.
     """
     from .bootstrap import simulate_ensemble
     from .expressions import parse_expression
@@ -294,16 +309,18 @@ def score_candidates(candidates, state_names, input_names, runs, smoothed, *, si
     sigma = np.where(measured.std(axis=0) > 0, measured.std(axis=0), 1.0)
     squared = np.zeros((len(candidates), len(state_names)))
     diverged = np.zeros(len(candidates), dtype=bool)
-    for run, (_, x0) in zip(runs, smoothed):
+    for run, (_, x_start) in zip(runs, smoothed):
         interpolation = simulation["input_interpolation"]
         if interpolation == "auto":
             interpolation = guess_interpolation(run.u)
-        x, div = simulate_ensemble(expressions, state_names, input_names, coef, run.t, x0, run.u,
-                                   interpolation=interpolation, method=simulation["method"],
-                                   rtol=simulation["rtol"], atol=simulation["atol"], limits=limits)
-        diverged |= div
-        squared += np.nansum(((x - run.x[None]) / sigma) ** 2, axis=1)
-    n_sim = len(measured)
+        for rows in simulation_segments(run.t, horizon):
+            x, div = simulate_ensemble(expressions, state_names, input_names, coef, run.t[rows],
+                                       x_start[rows[0]], run.u[rows], interpolation=interpolation,
+                                       method=simulation["method"], rtol=simulation["rtol"],
+                                       atol=simulation["atol"], limits=limits)
+            diverged |= div
+            squared += np.nansum(((x - run.x[rows][None]) / sigma) ** 2, axis=1)
+    n_sim = sum(len(rows) for run in runs for rows in simulation_segments(run.t, horizon))
     x_dot = np.vstack([s.x_dot for s, _ in smoothed])
     d_sigma = np.where(x_dot.std(axis=0) > 0, x_dot.std(axis=0), 1.0)
     scores = []

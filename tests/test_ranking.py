@@ -1,0 +1,127 @@
+"""Ranking candidate structures (Mangan, Kutz, Brunton & Proctor 2017, Proc. R. Soc. A 473)."""
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import discover
+from discover import ranking
+from discover.cli import main
+from discover.config import validate
+from discover.exceptions import ExpressionError
+from discover.selection import least_squares_gram
+from systems import LORENZ_INPUT_TRUTH, lorenz_runs, truth_map, write_runs
+
+statsmodels_api = pytest.importorskip("statsmodels.api")
+ROOT = Path(__file__).resolve().parents[1]
+
+
+@pytest.mark.parametrize("with_constant", [True, False])
+def test_information_criteria_equal_statsmodels_ols(with_constant):
+    # Reference: statsmodels OLS results .aic and .bic on the same regression, fixed term set.
+    rng = np.random.default_rng(7)
+    x = rng.normal(size=(250, 3))
+    theta = np.column_stack([np.ones(250), x]) if with_constant else x
+    y = theta @ rng.normal(size=theta.shape[1]) + 0.3 * rng.standard_normal(250)
+    coef = least_squares_gram(theta.T @ theta, (theta.T @ y)[:, None], np.ones((theta.shape[1], 1), bool))
+    rss = float(np.sum((y - theta @ coef[:, 0]) ** 2))
+    aic, aicc, bic = ranking.information_criteria(rss, len(y), theta.shape[1])
+    fit = statsmodels_api.OLS(y, theta).fit()
+    assert aic == pytest.approx(fit.aic, rel=1e-9, abs=1e-9)
+    assert bic == pytest.approx(fit.bic, rel=1e-9, abs=1e-9)
+    # AICc (Hurvich & Tsai 1989): AIC + 2k(k+1)/(n-k-1).
+    k, n = theta.shape[1], len(y)
+    assert aicc == pytest.approx(fit.aic + 2 * k * (k + 1) / (n - k - 1), rel=1e-12)
+
+
+def test_akaike_weights_and_support_labels():
+    # Burnham & Anderson (2002): w_i = exp(-Δ_i/2) / Σ exp(-Δ_j/2); Δ ≤ 2 substantial, > 10 none.
+    w = ranking.akaike_weights(np.array([0.0, 2.0, np.inf]))
+    assert w == pytest.approx([1 / (1 + np.exp(-1)), np.exp(-1) / (1 + np.exp(-1)), 0.0])
+    assert [ranking.support_label(d) for d in (0.0, 2.0, 5.0, 10.5)] == \
+        ["substantial", "substantial", "less", "essentially none"]
+
+
+def test_pareto_front():
+    # A point is on the front when no other point is at least as good on both axes.
+    front = ranking.pareto_front([1, 2, 3, 3, 4], [5.0, 3.0, 3.5, 1.0, 1.0])
+    assert front.tolist() == [True, True, False, True, False]
+
+
+@pytest.fixture(scope="module")
+def ship():
+    return discover.run(ROOT / "configs" / "ship.toml")
+
+
+def structure_of(result, name):
+    return {c.name: c for c in result.candidates}[name].structure(result.model.state_names)
+
+
+def test_ship_true_structure_ranks_first_and_no_cubic_is_far_behind(ship):
+    # Truth: data_demo/make_ship.py (Norrbin's cubic yaw damping).
+    from data_demo.make_ship import TRUE_COEFFICIENTS
+
+    truth = frozenset((s, k) for s, terms in truth_map(TRUE_COEFFICIENTS).items() for k in terms)
+    table = ship.ranking
+    assert structure_of(ship, table.loc[0, "candidate"]) == truth
+    row = table[table["candidate"] == "hypothesis 'no cubic damping'"].iloc[0]
+    assert row["rank"] > 1 and row["delta_aicc"] > 10
+
+
+def test_lorenz_true_structure_on_pareto_front_and_first_among_path_candidates(tmp_path):
+    # Lorenz (1963), sigma=10, rho=28, beta=8/3, with an input on dx/dt.
+    # Low noise (1e-4 of each state's std); scored on 0.5 s segments, as chaos allows.
+    pattern = write_runs(tmp_path, lorenz_runs(noise=1e-4, n_runs=3, duration=6.0))
+    result = discover.run({
+        "data": {"files": [pattern], "states": ["x", "y", "z"], "inputs": ["u"], "held_out": ["run_2"]},
+        "derivatives": {"method": "savitzky_golay", "window": 9, "order": 4},
+        "terms": {"degree": 2, "input_degree": 1},
+        "selection": {"cv_folds": 4},
+        "bootstrap": {"members": 0},
+        "ranking": {"sr3": False, "horizon": 0.5},
+        "output": {"figures": False},
+    })
+    truth = frozenset((s, k) for s, terms in truth_map(LORENZ_INPUT_TRUTH).items() for k in terms)
+    table = result.ranking
+    is_path = (table["source"] == "path") | table["also"].str.contains("path threshold")
+    first_path = table[is_path].iloc[0]
+    assert structure_of(result, first_path["candidate"]) == truth
+    assert bool(first_path["pareto"])
+
+
+@pytest.mark.parametrize("term, fragment", [
+    ("yaw_rate*wind", r"'no wind'.*\.yaw_rate\[1\]: 'yaw_rate\*wind' at column 10: unknown name 'wind'"),
+    ("yaw_rate***3", r"'no wind'.*\.yaw_rate\[1\]: 'yaw_rate\*\*\*3' does not parse \(at column 11\)"),
+])
+def test_bad_hypothesis_names_itself_and_the_position(term, fragment):
+    raw = {"data": {"files": ["x.csv"], "states": ["heading", "yaw_rate"], "inputs": ["rudder"]},
+           "ranking": {"hypotheses": [{"name": "no wind", "yaw_rate": ["yaw_rate", term]}]}}
+    with pytest.raises(ExpressionError, match=fragment):
+        validate(raw, "cfg.toml")
+
+
+def test_hypothesis_for_unknown_state_is_refused():
+    raw = {"data": {"files": ["x.csv"], "states": ["heading", "yaw_rate"], "inputs": ["rudder"]},
+           "ranking": {"hypotheses": [{"name": "h", "yawrate": ["rudder"]}]}}
+    with pytest.raises(discover.ConfigError, match=r"unknown key \[ranking.hypotheses 'h'\].yawrate.*'yaw_rate'"):
+        validate(raw, "cfg.toml")
+
+
+def test_rank_command_adds_hypotheses_without_changing_earlier_rows(tmp_path, capsys):
+    out = tmp_path / "ship"
+    assert main(["run", str(ROOT / "configs" / "ship.toml"), "--out", str(out)]) == 0
+    extra = tmp_path / "more.toml"
+    extra.write_text('[[ranking.hypotheses]]\nname = "rudder only"\nyaw_rate = ["rudder"]\n')
+    capsys.readouterr()
+    assert main(["rank", str(out), str(extra)]) == 0
+    assert "hypothesis 'rudder only'" in capsys.readouterr().out
+    before = pd.read_csv(out / "ranking.csv")
+    after = pd.read_csv(out / "ranking_updated.csv")
+    assert len(after) == len(before) + 1
+    merged = after.set_index("candidate").loc[before["candidate"]]
+    np.testing.assert_allclose(merged["aicc"], before["aicc"].to_numpy())
+    assert after.iloc[0]["candidate"] == before.iloc[0]["candidate"]
+    # The same name again is refused with the file named.
+    assert main(["rank", str(out), str(out / "ranking_updated.csv")]) == 2
