@@ -18,7 +18,7 @@ from discover.data import load_dataset
 from discover.selection import fit_scaled
 from discover.expressions import parse_expression
 from discover.model import Model
-from discover.pipeline import (differentiate, library_from_config, regression_blocks, run_ensemble,
+from discover.pipeline import (absolute_tolerance, differentiate, library_from_config, regression_blocks, run_ensemble,
                                select_model, state_limits)
 
 
@@ -65,7 +65,8 @@ def main(path):
     expressions = [parse_expression(model.terms[j], known) for j in used]
     coef = ens.coef[:, used, :]
     sim = config["simulation"]
-    options = dict(interpolation="linear", method=sim["method"], rtol=sim["rtol"], atol=sim["atol"], limits=limits)
+    options = dict(interpolation="linear", method=sim["method"], rtol=sim["rtol"],
+                   atol=absolute_tolerance(config, result.training), limits=limits)
 
     def loop():
         out = []

@@ -21,6 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .selection import Scale, fit_scaled, least_squares_gram, scaled_problem
+from .terms import TermEvaluator
 
 #: Sub-blocks per bootstrap block: block starts fall on a grid of block_length / 4.
 SUB_PER_BLOCK = 4
@@ -135,11 +136,10 @@ def fit_member(gram, count, n_terms, available, thresholds, ridge, max_iter):
 
 
 def _fit_batch(grams, weights, counts, n_terms, available, thresholds, ridge, max_iter):
-    out = []
-    for w, mask in zip(weights, available):
-        gram = np.tensordot(w, grams, axes=1)
-        out.append(fit_member(gram, float(w @ counts), n_terms, mask, thresholds, ridge, max_iter))
-    return out
+    # One product gives every member's Gram: (members, blocks) @ (blocks, p*p).
+    member_grams = (weights @ grams.reshape(len(grams), -1)).reshape(len(weights), *grams.shape[1:])
+    return [fit_member(gram, float(w @ counts), n_terms, mask, thresholds, ridge, max_iter)
+            for gram, w, mask in zip(member_grams, weights, available)]
 
 
 def fit_ensemble(block_set, weights, available, thresholds, *, ridge, max_iter, n_jobs=1, progress=False):
@@ -267,12 +267,10 @@ def ensemble_rhs(expressions, state_names, input_names, coef):
     one evaluation of each term for all members, then one batched product.
     """
 
+    evaluate = TermEvaluator(expressions, tuple(state_names) + tuple(input_names))
+
     def rhs(x, u, members):
-        columns = {name: x[:, i] for i, name in enumerate(state_names)}
-        columns.update({name: np.full(len(x), u[j]) for j, name in enumerate(input_names)})
-        theta = np.empty((len(x), len(expressions)))
-        for j, expression in enumerate(expressions):
-            theta[:, j] = expression.evaluate(columns)
+        theta = evaluate(np.hstack([x, np.broadcast_to(u, (len(x), len(u)))]))
         return np.einsum("mk,mki->mi", theta, coef[members])
 
     return rhs

@@ -17,7 +17,7 @@ import numpy as np
 from . import simulate as _simulate
 from .exceptions import DiscoverError, ModelFileError
 from .expressions import parse_expression
-from .terms import columns_of
+from .terms import TermEvaluator
 
 FORMAT = "discover-model/1"
 
@@ -51,7 +51,7 @@ class Model:
         used = np.flatnonzero(np.any(self.coef != 0, axis=1))
         parsed = [parse_expression(self.terms[i], known, where=f"model term {self.terms[i]!r}") for i in used]
         object.__setattr__(self, "_used", used)
-        object.__setattr__(self, "_parsed", parsed)
+        object.__setattr__(self, "_evaluate", TermEvaluator(parsed, known))
         object.__setattr__(self, "_coef_used", np.ascontiguousarray(self.coef[used]))
 
     @property
@@ -66,12 +66,9 @@ class Model:
         x2 = x.reshape(1, -1) if single else x
         if u is None:
             u = np.empty((len(x2), 0))
-        u2 = np.asarray(u, dtype=float).reshape(len(x2), -1)
-        columns = columns_of(self.state_names, self.input_names, x2, u2)
-        theta = np.empty((len(x2), len(self._parsed)))
-        for j, expression in enumerate(self._parsed):
-            theta[:, j] = expression.evaluate(columns)
-        dx = theta @ self._coef_used
+        u2 = np.broadcast_to(np.asarray(u, dtype=float).reshape(-1, len(self.input_names)),
+                             (len(x2), len(self.input_names)))
+        dx = self._evaluate(np.hstack([x2, u2])) @ self._coef_used
         return dx[0] if single else dx
 
     def simulate(self, t, x0, u=None, *, interpolation="linear", method="LSODA", rtol=1e-6,

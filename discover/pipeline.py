@@ -232,6 +232,15 @@ def select_model(config, blocks, library):
     return coef, thresholds, cv, split, warnings
 
 
+def absolute_tolerance(config, training):
+    """[simulation].atol, or 1e-6 times each state's range over the training runs."""
+    if config["simulation"]["atol"] is not None:
+        return config["simulation"]["atol"]
+    x = np.vstack([run.x for run in training.runs])
+    spread = x.max(axis=0) - x.min(axis=0)
+    return 1e-6 * np.where(spread > 0, spread, 1.0)
+
+
 def state_limits(training, factor):
     """Center and half-width of the bounded region used to call a simulation diverged."""
     x = np.vstack([run.x for run in training.runs])
@@ -251,7 +260,7 @@ def validate_held_out(config, model, held_out_smoothed, held_out, limits):
             interpolation = guess_interpolation(run.u)
         simulation = model.simulate(
             run.t, smooth.x[0], run.u, interpolation=interpolation, method=sim["method"],
-            rtol=sim["rtol"], atol=sim["atol"], limits=limits,
+            rtol=sim["rtol"], atol=sim["atol_resolved"], limits=limits,
         )
         metrics = fit_metrics(run.x, simulation.x)
         results.append({"run": run.name, "simulation": simulation, "metrics": metrics,
@@ -307,6 +316,7 @@ def run(source, *, progress=False):
         ensemble = run_ensemble(config, blocks, pieces, library, thresholds, block_length, progress)
         model = ensemble_model(config, single, ensemble, blocks)
     limits = state_limits(training, config["simulation"]["divergence_factor"])
+    config["simulation"]["atol_resolved"] = absolute_tolerance(config, training)
     # Validation starts from the smoothed state; differentiate() trimmed the ends,
     # so smooth the held-out runs again without trimming for their first sample.
     untrimmed = dict(config, derivatives=dict(config["derivatives"], trim=0))
@@ -490,7 +500,7 @@ def add_prediction_bands(config, model, ensemble, validation, limits, noise_std)
         x, diverged = bootstrap.simulate_ensemble(
             expressions, model.state_names, model.input_names, coef, item["t"],
             item["x0"], item["u"], interpolation=item["interpolation"], method=sim["method"],
-            rtol=sim["rtol"], atol=sim["atol"], limits=limits,
+            rtol=sim["rtol"], atol=sim["atol_resolved"], limits=limits,
         )
         median, low, high = bootstrap.prediction_band(x, diverged, level, noise_std=noise_std, rng=rng)
         item["band"] = (median, low, high)
@@ -652,6 +662,7 @@ def rank_more(out_dir, hypotheses_path, *, criterion=None):
     smoothed = differentiate(training, config)
     candidates = [hypothesis_candidate(config, h, model, smoothed) for h in config["ranking"]["hypotheses"]]
     limits = state_limits(training, config["simulation"]["divergence_factor"])
+    config["simulation"]["atol_resolved"] = absolute_tolerance(config, training)
     scores = ranking.score_candidates(candidates, model.state_names, model.input_names, held_out.runs,
                                       held_out_smoothed(config, held_out), simulation=config["simulation"],
                                       limits=limits, horizon=config["ranking"]["horizon"])

@@ -317,7 +317,7 @@ def score_candidates(candidates, state_names, input_names, runs, smoothed, *, si
             x, div = simulate_ensemble(expressions, state_names, input_names, coef, run.t[rows],
                                        x_start[rows[0]], run.u[rows], interpolation=interpolation,
                                        method=simulation["method"], rtol=simulation["rtol"],
-                                       atol=simulation["atol"], limits=limits)
+                                       atol=simulation["atol_resolved"], limits=limits)
             diverged |= div
             squared += np.nansum(((x - run.x[rows][None]) / sigma) ** 2, axis=1)
     n_sim = sum(len(rows) for run in runs for rows in simulation_segments(run.t, horizon))

@@ -276,7 +276,7 @@ def plot_top_candidates(result, top):
         c = by_name[row["candidate"]]
         model = Model(names, result.model.input_names, c.terms, c.coef)
         traj = model.simulate(item["t"], item["x0"], item["u"], interpolation=item["interpolation"],
-                              method=sim["method"], rtol=sim["rtol"], atol=sim["atol"])
+                              method=sim["method"], rtol=sim["rtol"], atol=sim["atol_resolved"])
         for i, ax in enumerate(axes[:, 0]):
             ax.plot(item["t"], traj.x[:, i], color="black", linestyle=styles[n % len(styles)], linewidth=1.0,
                     label=f"#{row['rank']} {row['candidate']}")

@@ -69,6 +69,8 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
     t : ndarray of shape (n_samples,)
     x0 : ndarray of shape (n_members, n_states)
     u : ndarray of shape (n_samples, n_inputs), or callable of time
+    atol : float or ndarray of shape (n_states,)
+        Absolute tolerance, per state if an array.
     limits : tuple (center, half_width) of ndarrays of shape (n_states,), optional
         The bounded region. A member that leaves it is stopped there (a terminal
         event), marked diverged, and the others go on from that time without it.
@@ -88,6 +90,7 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
     u_of = input_function(t, u, interpolation)
     x = np.full((n_members, len(t), n_states), np.nan)
     stopped_at = np.full(n_members, np.nan)
+    atol_state = np.broadcast_to(np.asarray(atol, dtype=float), (n_states,))
     active, y, start, message = np.arange(n_members), x0.ravel(), t[0], ""
     while active.size:
         members = active.copy()
@@ -110,7 +113,7 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
         pending = t[t >= start]
         with np.errstate(all="ignore"):
             sol = solve_ivp(fun, (start, t[-1]), y, method=method, t_eval=pending, rtol=rtol,
-                            atol=atol, events=events)
+                            atol=np.tile(atol_state, len(members)), events=events)
         # solve_ivp returns (n_states * n_active, n_points); ours is (member, time, state).
         done = sol.y.T.reshape(-1, len(members), n_states).transpose(1, 0, 2)
         first = len(t) - len(pending)

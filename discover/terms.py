@@ -188,3 +188,47 @@ def build_library(
             "trig variables or custom terms."
         )
     return Library(state_names, input_names, tuple(terms))
+
+
+class TermEvaluator:
+    """Evaluate a fixed list of terms at a few points, fast (the simulation hot path).
+
+    Monomials (products of integer powers of the variables, the constant included)
+    become one exponent matrix, evaluated for all of them in one numpy expression;
+    any other term is evaluated through its parsed expression.
+
+    Parameters
+    ----------
+    expressions : sequence of parsed expressions (:class:`discover.expressions.Expression`)
+    names : sequence of str
+        The variables, in the column order of the ``z`` passed to :meth:`__call__`.
+    """
+
+    def __init__(self, expressions, names):
+        self.names = list(names)
+        self.n_terms = len(expressions)
+        monomial, other, powers = [], [], []
+        for j, expression in enumerate(expressions):
+            key = term_key(expression.text)
+            if key == ("constant",) or (key[0] != "text" and all(n in self.names for n, _ in key)):
+                row = np.zeros(len(self.names), dtype=int)
+                for name, power in ([] if key == ("constant",) else key):
+                    row[self.names.index(name)] = power
+                monomial.append(j)
+                powers.append(row)
+            else:
+                other.append(j)
+        self.monomial = np.array(monomial, dtype=int)
+        self.powers = np.array(powers, dtype=int).reshape(len(monomial), len(self.names))
+        self.other = [(j, expressions[j]) for j in other]
+
+    def __call__(self, z):
+        """Θ of shape (n_points, n_terms) from z of shape (n_points, n_variables)."""
+        theta = np.empty((len(z), self.n_terms))
+        if len(self.monomial):
+            theta[:, self.monomial] = np.prod(z[:, None, :] ** self.powers[None, :, :], axis=2)
+        if self.other:
+            columns = {name: z[:, i] for i, name in enumerate(self.names)}
+            for j, expression in self.other:
+                theta[:, j] = expression.evaluate(columns)
+        return theta

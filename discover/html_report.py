@@ -1,0 +1,537 @@
+"""The self-contained HTML report of a run (``report.html``). Reports only format.
+
+:func:`write_report` turns a :class:`discover.pipeline.Result` into one HTML file
+that opens offline in any browser: every figure is embedded as a base64 PNG
+``data:`` URI, the style sheet is inline, and nothing is loaded from anywhere
+else (no links, scripts or fonts). Text is selectable and tables are real HTML
+tables. Every string that comes from the data or the config (column names, file
+names, run names, candidate names, warnings, the config itself) goes through
+:func:`html.escape`.
+
+The figures are those of :mod:`discover.report`, plus two defined here,
+:func:`plot_run_overview` and :func:`plot_derivative_check`; each takes parts of
+a result and returns a matplotlib figure, so notebooks can call them one by one.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+from pathlib import Path
+
+import numpy as np
+
+from . import pipeline
+from .config import to_toml
+from .simulate import guess_interpolation
+from .report import (
+    CAUTION,
+    _pyplot,
+    format_equation,
+    plot_coefficient_distributions,
+    plot_cv_curve,
+    plot_held_out,
+    plot_inclusion_map,
+    plot_pareto,
+    plot_top_candidates,
+    pretty_term,
+)
+
+#: Section ids of the report, in page order, with their headings.
+SECTIONS = {
+    "caution": "Before you use this model",
+    "equations": "Identified equations",
+    "held-out": "Held-out validation",
+    "warnings": "Warnings",
+    "inclusion-map": "Inclusion map",
+    "cv-curve": "Threshold cross-validation",
+    "ranking": "Ranking of candidate structures",
+    "data-overview": "Data overview",
+    "derivative-check": "Derivative check",
+    "inputs": "Inputs of the job",
+}
+MAX_OVERVIEW_RUNS = 12  # runs drawn in the data overview; the table lists them all
+MAX_RANKING_ROWS = 30  # rows of the ranking table; ranking.csv has them all
+FIGURE_DPI = 100
+
+_STYLE = """
+body { font-family: system-ui, -apple-system, "Segoe UI", Helvetica, Arial, sans-serif;
+       color: #111; background: #fff; max-width: 72rem; margin: 0 auto; padding: 1rem 1.5rem 3rem;
+       line-height: 1.45; }
+h1 { font-size: 1.6rem; margin-bottom: 0.2rem; }
+h2 { font-size: 1.25rem; border-bottom: 1px solid #444; padding-bottom: 0.2rem; margin-top: 2.2rem; }
+h3 { font-size: 1.05rem; margin-bottom: 0.3rem; }
+nav ol { columns: 2; font-size: 0.95rem; }
+.caution { border: 3px double #000; padding: 0.6rem 1rem; background: #f2f2f2; }
+.equation { font-family: ui-monospace, "DejaVu Sans Mono", Menlo, Consolas, monospace; font-size: 1.02rem;
+            background: #f6f6f6; padding: 0.35rem 0.6rem; border-left: 4px solid #000; overflow-x: auto; }
+table { border-collapse: collapse; margin: 0.5rem 0 1rem; font-size: 0.92rem; }
+caption { text-align: left; font-weight: 600; padding-bottom: 0.25rem; }
+th, td { border: 1px solid #999; padding: 0.2rem 0.55rem; vertical-align: top; }
+th { background: #e6e6e6; text-align: left; }
+td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+td.hash, td.path { font-family: ui-monospace, Menlo, Consolas, monospace; font-size: 0.82rem;
+                   word-break: break-all; }
+pre { background: #f6f6f6; border: 1px solid #ccc; padding: 0.6rem; overflow-x: auto; font-size: 0.85rem; }
+figure { margin: 0.8rem 0 1.4rem; }
+figure img { max-width: 100%; height: auto; border: 1px solid #ddd; }
+figcaption { font-size: 0.9rem; color: #333; }
+.absent { font-style: italic; color: #333; }
+ul.warnings li { margin-bottom: 0.3rem; }
+@media print { nav { display: none; } h2 { break-after: avoid; } figure { break-inside: avoid; } }
+"""
+
+
+def esc(value):
+    """Escape any value for HTML text or a quoted attribute."""
+    return html.escape(str(value), quote=True)
+
+
+def _number(value, digits=4):
+    """A number for a table cell: ``—`` for None/NaN."""
+    if value is None:
+        return "—"
+    value = float(value)
+    return "—" if not np.isfinite(value) else f"{value:.{digits}g}"
+
+
+def _percent(value, digits=1):
+    return "—" if value is None or not np.isfinite(value) else f"{value:.{digits}f} %"
+
+
+# --------------------------------------------------------------------------- HTML building blocks
+
+
+def _table(header, rows, *, caption=None, numeric=(), classes=None):
+    """An HTML table; every cell is escaped. ``numeric``: column indices right-aligned."""
+    classes = classes or {}
+    parts = ["<table>"]
+    if caption:
+        parts.append(f"<caption>{esc(caption)}</caption>")
+    parts.append("<thead><tr>" + "".join(f'<th scope="col">{esc(h)}</th>' for h in header) + "</tr></thead>")
+    parts.append("<tbody>")
+    for row in rows:
+        cells = []
+        for k, cell in enumerate(row):
+            css = "num" if k in numeric else classes.get(k)
+            cells.append(f'<td class="{css}">{esc(cell)}</td>' if css else f"<td>{esc(cell)}</td>")
+        parts.append("<tr>" + "".join(cells) + "</tr>")
+    parts.append("</tbody></table>")
+    return "\n".join(parts)
+
+
+def _paragraph(text, css=None):
+    return f'<p class="{css}">{esc(text)}</p>' if css else f"<p>{esc(text)}</p>"
+
+
+def figure_uri(fig, *, dpi=FIGURE_DPI):
+    """A matplotlib figure as a ``data:image/png;base64,...`` URI; the figure is closed."""
+    plt = _pyplot()
+    buffer = io.BytesIO()
+    try:
+        fig.savefig(buffer, format="png", dpi=dpi, metadata={"Software": None})
+    finally:
+        plt.close(fig)
+    return "data:image/png;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
+
+
+def _figure(make, caption):
+    """``<figure>`` with the embedded PNG of ``make()``.
+
+    Math text is off while the figure is built and drawn: names from the data may
+    hold ``$``, which matplotlib would otherwise read as TeX.
+    """
+    import matplotlib
+
+    with matplotlib.rc_context({"text.parse_math": False}):
+        uri = figure_uri(make())
+    return (f'<figure><img src="{uri}" alt="{esc(caption)}">'
+            f"<figcaption>{esc(caption)}</figcaption></figure>")
+
+
+# --------------------------------------------------------------------------- figures of this module
+
+
+def plot_run_overview(run, state_names, input_names):
+    """A run's states and inputs over time, one panel per column (grey scale).
+
+    States are solid black, inputs dashed grey (drawn as steps when the recorded
+    input mostly holds its values, as a logged command does).
+
+    Parameters
+    ----------
+    run : discover.data.Run
+        ``t`` of shape (n_samples,), ``x`` of shape (n_samples, n_states), ``u`` of
+        shape (n_samples, n_inputs).
+    state_names, input_names : sequence of str
+        Axis labels.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    plt = _pyplot()
+    names = [(name, run.x[:, i], "state") for i, name in enumerate(state_names)]
+    names += [(name, run.u[:, j], "input") for j, name in enumerate(input_names)]
+    n = max(1, len(names))
+    fig, axes = plt.subplots(n, 1, figsize=(7, 1.5 * n + 0.7), sharex=True, squeeze=False)
+    # A held command is drawn as steps, as the simulation would hold it.
+    held = guess_interpolation(run.u) == "zoh"
+    for ax, (name, values, kind) in zip(axes[:, 0], names):
+        if kind == "state":
+            ax.plot(run.t, values, color="black", linewidth=1.0)
+        else:
+            ax.plot(run.t, values, color="0.35", linewidth=1.0, linestyle="--",
+                    drawstyle="steps-post" if held else "default")
+        ax.set_ylabel(f"{name}\n({kind})", fontsize=8)
+        ax.tick_params(labelsize=7)
+        ax.grid(True, color="0.9", linewidth=0.6)
+    axes[-1, 0].set_xlabel("time")
+    fig.suptitle(f"run {run.name}: {len(run.t)} samples", fontsize=10)
+    fig.tight_layout()
+    return fig
+
+
+def plot_derivative_check(smoothed_run, raw_t, raw_x, state_names):
+    """Smoothed against raw states of one run, and their difference.
+
+    Left column: the raw samples (grey dots) and the smoothed states the
+    derivatives come from (black line). Right column: raw minus smoothed on the
+    samples kept after end trimming; it should look like measurement noise, with no
+    trace of the signal left in it.
+
+    Parameters
+    ----------
+    smoothed_run : discover.pipeline.Smoothed
+        ``t`` of shape (n_kept,), ``x`` and ``x_raw`` of shape (n_kept, n_states).
+    raw_t : ndarray of shape (n_samples,)
+    raw_x : ndarray of shape (n_samples, n_states)
+        The run as loaded, ends included.
+    state_names : sequence of str
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    plt = _pyplot()
+    n = len(state_names)
+    fig, axes = plt.subplots(n, 2, figsize=(9, 2.0 * n + 0.7), sharex=True, squeeze=False,
+                             gridspec_kw={"width_ratios": [3, 2]})
+    residual = smoothed_run.x_raw - smoothed_run.x
+    for i, state in enumerate(state_names):
+        left, right = axes[i]
+        left.plot(raw_t, raw_x[:, i], linestyle="none", marker=".", markersize=2.5, color="0.6", label="raw")
+        left.plot(smoothed_run.t, smoothed_run.x[:, i], color="black", linewidth=1.0, label="smoothed")
+        left.set_ylabel(state, fontsize=8)
+        right.plot(smoothed_run.t, residual[:, i], color="0.3", linewidth=0.6)
+        right.axhline(0.0, color="black", linewidth=0.6)
+        right.set_ylabel(f"raw − smoothed\n{state}", fontsize=8)
+        for ax in (left, right):
+            ax.tick_params(labelsize=7)
+            ax.grid(True, color="0.9", linewidth=0.6)
+    axes[0, 0].legend(fontsize=7, loc="best", markerscale=3)
+    axes[-1, 0].set_xlabel("time")
+    axes[-1, 1].set_xlabel("time")
+    fig.suptitle(f"derivative check on run {smoothed_run.name}", fontsize=10)
+    fig.tight_layout()
+    return fig
+
+
+# --------------------------------------------------------------------------- sections
+
+
+def _section(key, body):
+    return f'<section>\n<h2 id="{key}">{esc(SECTIONS[key])}</h2>\n{body}\n</section>'
+
+
+def _caution():
+    return _section("caution", f'<div class="caution"><p>{esc(CAUTION)}</p></div>')
+
+
+def _interval_level(result):
+    level = result.model.info.get("ensemble", {}).get("interval_level") if isinstance(
+        result.model.info.get("ensemble"), dict) else None
+    return level if level is not None else result.config["bootstrap"]["level"]
+
+
+def _equations(result):
+    model = result.model
+    stats = model.term_stats
+    has_p = "inclusion_probability" in stats
+    has_interval = "coefficient_low" in stats and "coefficient_high" in stats
+    level = _interval_level(result)
+    parts = []
+    if result.ensemble is None:
+        parts.append(_paragraph("The bootstrap ensemble was off ([bootstrap].members = 0): the terms have no "
+                                "inclusion probabilities or coefficient intervals.", "absent"))
+    else:
+        members = model.info.get("ensemble", {}).get("members", result.config["bootstrap"]["members"])
+        parts.append(_paragraph(
+            f"Inclusion probability: the share of {members} bootstrap members that keep the term. "
+            f"Interval: the central {100 * level:.0f} % of the coefficients of the members that keep it. "
+            "Coefficients are in the data's own units."))
+    thresholds = model.info.get("threshold", {})
+    for state, kept in model.equations():
+        parts.append(f"<h3>d({esc(state)})/dt</h3>")
+        parts.append(f'<p class="equation">{esc(format_equation(state, kept))}</p>')
+        if not kept:
+            parts.append(_paragraph("Every candidate term fell below the threshold: this equation is empty.",
+                                    "absent"))
+            continue
+        header = ["term", "coefficient"]
+        if has_p:
+            header.append("inclusion probability")
+        if has_interval:
+            header += [f"interval low ({100 * level:.0f} %)", f"interval high ({100 * level:.0f} %)"]
+        rows = []
+        for expr, coefficient, values in kept:
+            row = [pretty_term(expr), _number(coefficient, 6)]
+            if has_p:
+                row.append(_number(values.get("inclusion_probability"), 3))
+            if has_interval:
+                row += [_number(values.get("coefficient_low"), 4), _number(values.get("coefficient_high"), 4)]
+            rows.append(row)
+        threshold = thresholds.get(state)
+        caption = f"terms of d({state})/dt" + (
+            f" (threshold {threshold:.3g}, dimensionless)" if isinstance(threshold, (int, float)) else "")
+        parts.append(_table(header, rows, caption=caption, numeric=range(1, len(header))))
+    if result.ensemble is not None and np.any(model.coef):
+        parts.append(_figure(lambda: plot_coefficient_distributions(model, result.ensemble.coef),
+                             "Coefficients of the bootstrap members that keep each term; dashed: the model's."))
+    return _section("equations", "\n".join(parts))
+
+
+def _held_out(result):
+    if not result.validation:
+        body = _paragraph("No run was held out: the model is not validated on unseen data. Hold out at least "
+                          "one run ([data].held_out) before trusting its predictions.", "absent")
+        return _section("held-out", body)
+    table = result.validation_table()
+    rows = [[r["run"], r["state"], _percent(r["fit_percent"]), _number(r["rmse"]), _number(r["nrmse"]),
+             "yes" if r["diverged"] else "no",
+             _percent(100 * r["band_coverage"], 0) if np.isfinite(r["band_coverage"]) else "—",
+             "—" if not np.isfinite(r["members_diverged"]) else str(int(r["members_diverged"]))]
+            for _, r in table.iterrows()]
+    header = ["run", "state", "fit", "RMSE", "NRMSE", "diverged", "samples inside the band", "members diverged"]
+    parts = [_paragraph("Free-run simulation of each held-out run from its first (smoothed) state with its "
+                        "recorded input. Fit = 100·(1 − NRMSE), NRMSE = RMSE / std of the measured state."),
+             _table(header, rows, caption="held-out fit", numeric=(2, 3, 4, 6, 7))]
+    names = result.model.state_names
+    for item in result.validation:
+        band = item["band"][1:] if "band" in item else None
+        what = "measured (grey), simulated (dashed)" + (", ensemble band (shaded)" if band is not None else "")
+        parts.append(_figure(lambda item=item, band=band: plot_held_out(item, names, band=band),
+                             f"Held-out run {item['run']}: {what}."))
+    return _section("held-out", "\n".join(parts))
+
+
+def _warnings(result):
+    if not result.warnings:
+        return _section("warnings", _paragraph("No warnings."))
+    items = "".join(f"<li>{esc(w)}</li>" for w in result.warnings)
+    return _section("warnings", f'<ul class="warnings">{items}</ul>')
+
+
+def _inclusion(result):
+    if result.ensemble is None:
+        return _section("inclusion-map", _paragraph(
+            "The bootstrap ensemble was off ([bootstrap].members = 0): no inclusion map.", "absent"))
+    names = result.model.state_names
+    probability = result.ensemble.summary.inclusion_probability
+    shown = np.flatnonzero(probability.max(axis=1) > 0.0)
+    rows = [[pretty_term(result.library_terms[j])] + [_number(p, 3) for p in probability[j]] for j in shown]
+    parts = [
+        _figure(lambda: plot_inclusion_map(result.library_terms, names, probability),
+                "Inclusion probability of every candidate term that some member kept, per equation."),
+        _table(["term"] + [f"d({s})/dt" for s in names], rows,
+               caption=f"inclusion probabilities ({len(shown)} of {len(result.library_terms)} candidate terms "
+                       "kept by at least one member)", numeric=range(1, len(names) + 1)),
+    ]
+    return _section("inclusion-map", "\n".join(parts))
+
+
+def _cv(result):
+    names = result.model.state_names
+    thresholds = result.model.info.get("threshold", {})
+    if result.cv is None:
+        fixed = ", ".join(f"{s} {v:.3g}" for s, v in thresholds.items()) or "none recorded"
+        return _section("cv-curve", _paragraph(
+            f"The threshold was fixed in the config ([selection].threshold), not cross-validated: {fixed}.",
+            "absent"))
+    cv = result.cv
+    rows = []
+    for i, state in enumerate(names):
+        t = int(np.argmin(np.abs(cv.thresholds - cv.selected[i])))
+        rows.append([state, _number(cv.selected[i], 3), _number(cv.error[t, i], 3), _number(cv.error_se[t, i], 3),
+                     str(int(cv.n_terms[t, i]))])
+    split = result.model.info.get("cv_split")
+    parts = [
+        _paragraph(f"Rule {cv.rule!r}" + (f", folds by {split}" if split else "")
+                   + ": 'one_se' takes the largest threshold whose error is within one standard error of the "
+                     "minimum; 'min' the minimum."),
+        _table(["equation", "selected threshold", "CV error", "± 1 SE", "terms kept"],
+               [[f"d({r[0]})/dt"] + r[1:] for r in rows], caption="selected thresholds", numeric=(1, 2, 3, 4)),
+        _figure(lambda: plot_cv_curve(cv, names),
+                "Cross-validation error (± 1 SE) and terms kept (dotted, right axis) against the threshold; "
+                "dashed: the selected threshold."),
+    ]
+    return _section("cv-curve", "\n".join(parts))
+
+
+def _ranking(result):
+    table = result.ranking
+    if table is None:
+        return _section("ranking", _paragraph("The ranking was off ([ranking].enabled = false).", "absent"))
+    if not len(table):
+        return _section("ranking", _paragraph("No candidate structure was scored.", "absent"))
+    from .ranking import why_chosen
+
+    criterion = result.config["ranking"]["criterion"]
+    columns = [("rank", "rank", str), ("candidate", "candidate", str), ("source", "source", str),
+               ("n_terms", "terms", str), ("aicc", "AICc", _number), ("delta_aicc", "ΔAICc", lambda v: _number(v, 3)),
+               ("akaike_weight", "weight", lambda v: _number(v, 2)), ("bic", "BIC", _number),
+               ("simulation_error", "sim. error", _number), ("support", "support", str),
+               ("pareto", "Pareto", lambda v: "yes" if v else "no")]
+    columns = [c for c in columns if c[0] in table.columns]
+    rows = [[fmt(row[key]) for key, _, fmt in columns] for _, row in table.head(MAX_RANKING_ROWS).iterrows()]
+    numeric = [k for k, (key, _, _) in enumerate(columns) if key not in ("candidate", "source", "support", "pareto")]
+    parts = [
+        _paragraph(why_chosen(table, criterion)),
+        _paragraph(f"Ordered by {criterion}. ΔAICc ≤ 2: substantial support; > 10: essentially none. "
+                   "The simulation error is the mean NRMSE of the free-run simulation"
+                   + (" on the held-out runs." if result.held_out.runs else " on the training runs (none held out).")),
+        _table([label for _, label, _ in columns], rows, numeric=numeric,
+               caption=f"{len(table)} candidate structures"
+                       + (f" (first {MAX_RANKING_ROWS}; ranking.csv has all)" if len(table) > MAX_RANKING_ROWS else "")),
+        _figure(lambda: plot_pareto(table), "Number of terms against held-out simulation error; the Pareto "
+                                            "front joined, the best-ranked labelled #rank Δ=ΔAICc."),
+    ]
+    if result.validation and result.candidates:
+        top = result.config["ranking"]["top"]
+        parts.append(_figure(lambda: plot_top_candidates(result, top),
+                             f"The {top} best-ranked candidates on held-out run {result.validation[0]['run']}."))
+    return _section("ranking", "\n".join(parts))
+
+
+def _sampling(t):
+    steps = np.diff(t)
+    if steps.size == 0:
+        return "—", "—"
+    median = float(np.median(steps))
+    uniform = np.allclose(steps, median, rtol=1e-6, atol=0.0)
+    spread = "uniform" if uniform else f"{_number(steps.min())} to {_number(steps.max())}"
+    return _number(median), spread
+
+
+def _data_overview(result):
+    training, held_out = result.training, result.held_out
+    runs = [(run, "training") for run in training.runs] + [(run, "held out") for run in held_out.runs]
+    rows = []
+    for run, role in runs:
+        median, spread = _sampling(run.t)
+        rows.append([run.name, role, str(len(run.t)), _number(run.t[-1] - run.t[0]), median, spread,
+                     str(run.touched)])
+    touched = sum(run.touched for run, _ in runs)
+    config = result.config["data"]
+    parts = [
+        _paragraph(f"{len(runs)} runs, {sum(len(r.t) for r, _ in runs)} samples; states: "
+                   f"{', '.join(training.state_names)}; inputs: {', '.join(training.input_names) or 'none'}. "
+                   f"Gap handling ([data].missing = {config['missing']!r}) touched {touched} samples."),
+        _table(["run", "role", "samples", "duration", "sampling step (median)", "step range",
+                "samples dropped or interpolated"], rows, caption="runs", numeric=(2, 3, 4, 6)),
+    ]
+    for run, role in runs[:MAX_OVERVIEW_RUNS]:
+        parts.append(_figure(lambda run=run: plot_run_overview(run, training.state_names, training.input_names),
+                             f"Run {run.name} ({role}): states (solid) and inputs (dashed)."))
+    if len(runs) > MAX_OVERVIEW_RUNS:
+        parts.append(_paragraph(f"{len(runs) - MAX_OVERVIEW_RUNS} more runs are listed above but not drawn.",
+                                "absent"))
+    return _section("data-overview", "\n".join(parts))
+
+
+def _derivative_check(result):
+    if not result.smoothed:
+        return _section("derivative-check", _paragraph("No training run was smoothed.", "absent"))
+    smoothed = result.smoothed[0]
+    raw = next((run for run in result.training.runs if run.name == smoothed.name), None)
+    section = result.config["derivatives"]
+    options = ", ".join(f"{k} = {v!r}" for k, v in section.items() if k not in ("method", "trim"))
+    noise = (smoothed.x_raw - smoothed.x).std(axis=0)
+    dropped = (len(raw.t) - len(smoothed.t)) // 2 if raw is not None else None
+    parts = [
+        _paragraph(f"Method {section['method']!r}" + (f" ({options})" if options else "")
+                   + (f"; {dropped} samples dropped at each end of a run, where the estimate is unreliable."
+                      if dropped is not None else ".")),
+        _table(["state", "std of raw − smoothed (noise estimate)"],
+               [[s, _number(v)] for s, v in zip(result.model.state_names, noise)],
+               caption=f"run {smoothed.name}", numeric=(1,)),
+    ]
+    if raw is not None:
+        parts.append(_figure(lambda: plot_derivative_check(smoothed, raw.t, raw.x, result.model.state_names),
+                             f"Run {smoothed.name}: raw samples against the smoothed states, and their "
+                             "difference."))
+    return _section("derivative-check", "\n".join(parts))
+
+
+def _inputs(result):
+    record = pipeline.provenance(result)
+    files = [[f["run"], f["role"].replace("_", " "), str(f["samples"]), f["path"], f["sha256"]]
+             for f in record["data_files"]]
+    packages = [[name, version or "not installed"] for name, version in record["packages"].items()]
+    packages.append(["python", record["python"]])
+    parts = [
+        _paragraph(f"Config: {record['config_source']}; paths relative to {record['config_base']}; "
+                   f"seed {record['seed']}."),
+        _table(["run", "role", "samples", "file", "SHA-256"], files, caption="data files", numeric=(2,),
+               classes={3: "path", 4: "hash"}),
+        _table(["package", "version"], packages, caption="package versions"),
+        "<h3>Config as run (every default filled in)</h3>",
+        f"<pre>{esc(to_toml(result.config))}</pre>",
+    ]
+    return _section("inputs", "\n".join(parts))
+
+
+# --------------------------------------------------------------------------- the page
+
+
+def render_report(result):
+    """The HTML text of the report of a :class:`discover.pipeline.Result`."""
+    model = result.model
+    n_runs = len(result.training.runs) + len(result.held_out.runs)
+    title = f"discover report: {', '.join(model.state_names)}"
+    kept = int(np.count_nonzero(model.coef))
+    lead = (f"dx/dt = f(x, u) for the states {', '.join(model.state_names)} with the inputs "
+            f"{', '.join(model.input_names) or '(none)'}, identified from {len(result.training.runs)} training "
+            f"run(s) of {n_runs}; {kept} terms kept. Config: {result.config['_source']}.")
+    nav = "".join(f'<li><a href="#{key}">{esc(heading)}</a></li>' for key, heading in SECTIONS.items())
+    sections = [_caution(), _equations(result), _held_out(result), _warnings(result), _inclusion(result),
+                _cv(result), _ranking(result), _data_overview(result), _derivative_check(result), _inputs(result)]
+    return "\n".join([
+        "<!DOCTYPE html>",
+        '<html lang="en">',
+        "<head>",
+        '<meta charset="utf-8">',
+        '<meta name="viewport" content="width=device-width, initial-scale=1">',
+        f"<title>{esc(title)}</title>",
+        f"<style>{_STYLE}</style>",
+        "</head>",
+        "<body>",
+        f"<header><h1>{esc(title)}</h1>{_paragraph(lead)}"
+        + (f'<p>{len(result.warnings)} warning(s): see <a href="#warnings">Warnings</a>.</p>'
+           if result.warnings else "") + "</header>",
+        f"<nav><ol>{nav}</ol></nav>",
+        "<main>",
+        *sections,
+        "</main>",
+        "</body>",
+        "</html>",
+        "",
+    ])
+
+
+def write_report(result, folder):
+    """Write ``folder/report.html`` for a :class:`discover.pipeline.Result`; return its path."""
+    path = Path(folder) / "report.html"
+    path.write_text(render_report(result), encoding="utf-8")
+    return path
