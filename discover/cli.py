@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import argparse
+import signal
 import sys
+import threading
 
 from .exceptions import DiscoverError
 
@@ -99,9 +101,16 @@ def _simulate(args):
         print(f"{run.name}: {state} fit {fit:.1f} %, RMSE {rmse:.4g}")
 
 
+def _terminate(signum, frame):
+    # SIGTERM becomes an exception so that the output stage removes its staging folder.
+    raise KeyboardInterrupt
+
+
 def main(argv=None):
     parser = build_parser()
     args = parser.parse_args(argv)
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGTERM, _terminate)
     try:
         {"run": _run, "rank": _rank, "simulate": _simulate}[args.command](args)
     except DiscoverError as err:
@@ -110,7 +119,8 @@ def main(argv=None):
         print(f"discover: error: {err}", file=sys.stderr)
         return err.exit_code
     except KeyboardInterrupt:
-        print("discover: interrupted; no output folder was written.", file=sys.stderr)
+        print("discover: interrupted; no new output folder was written and an existing one "
+              "is as it was.", file=sys.stderr)
         return 130
     return 0
 

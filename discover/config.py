@@ -333,6 +333,10 @@ def _check_relations(where, config):
         default_trim(deriv["method"], {k: v for k, v in deriv.items() if k not in ("method", "trim")})
     except ConfigError as err:
         raise ConfigError(f"{where}: {err}") from None
+    from .expressions import parse_expression
+
+    for i, text in enumerate(terms["custom"]):
+        parse_expression(text, list(data["states"]) + list(data["inputs"]), where=f"{where}: [terms].custom[{i}]")
     _check_ranking(where, config)
     known = set(data["states"]) | set(data["inputs"])
     for key in ("variables", "trig_variables"):

@@ -6,10 +6,12 @@ is one more because of the header) and says what would be accepted.
 
 from __future__ import annotations
 
+import csv
 import difflib
 import glob
 import keyword
 import os
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -72,22 +74,61 @@ def resolve_files(patterns, base, where):
     return [Path(f) for f in files]
 
 
+def _first_lines(path, n=3):
+    try:
+        with open(path, encoding="utf-8", newline="") as handle:
+            return [line.rstrip("\r\n") for _, line in zip(range(n), handle)]
+    except FileNotFoundError:
+        raise DataError(f"{path}: file not found.") from None
+    except UnicodeDecodeError:
+        raise DataError(f"{path}: not a UTF-8 text file; export the run as CSV (UTF-8) or Parquet.") from None
+    except OSError as err:
+        raise DataError(f"{path}: cannot read the file ({err.strerror}).") from None
+
+
+def _check_csv_layout(path, lines):
+    """Catch the usual spreadsheet exports before pandas misreads them."""
+    if not lines or not lines[0].strip():
+        raise DataError(f"{path}: the file is empty or its first line is blank; the first line must be the header.")
+    header = next(csv.reader([lines[0]]))
+    if len(header) == 1:
+        for sep, name in ((";", "semicolons"), ("\t", "tabs")):
+            if sep in lines[0]:
+                decimal = any(re.search(r"\d,\d", line) for line in lines[1:])
+                hint = " and commas as decimal marks" if decimal else ""
+                raise DataError(f"{path}: the columns are separated by {name}{hint}. Accepted: ',' "
+                                "between columns and '.' as the decimal mark; re-export the file.")
+    names = [h.strip() for h in header]
+    duplicated = sorted({n for n in names if names.count(n) > 1})
+    if duplicated:
+        raise DataError(f"{path}: duplicate column names {duplicated}. Each column needs its own name.")
+    for number, line in enumerate(lines[1:], start=2):
+        fields = next(csv.reader([line])) if line else []
+        if len(fields) > len(header):
+            raise DataError(f"{path}: line {number} has {len(fields)} fields but the header has "
+                            f"{len(header)}; are commas used as decimal marks? Accepted: '.' decimals.")
+
+
 def read_table(path):
-    """Read one file into a DataFrame of raw cells; sniff obvious format problems."""
+    """Read one file into a DataFrame of raw cells; refuse the common format problems."""
     kind = READERS.get(path.suffix.lower())
     if kind is None:
         raise DataError(f"{path}: unsupported file type {path.suffix!r}. Accepted: .csv, .txt, .parquet, .pq.")
-    try:
-        if kind == "parquet":
+    if kind == "parquet":
+        try:
             return pd.read_parquet(path)
-        frame = pd.read_csv(path, skipinitialspace=True)
-    except FileNotFoundError:
-        raise DataError(f"{path}: file not found.") from None
-    except (OSError, UnicodeDecodeError, ValueError, pd.errors.ParserError, ImportError) as err:
+        except FileNotFoundError:
+            raise DataError(f"{path}: file not found.") from None
+        except Exception as err:  # pyarrow raises its own types for corrupt files
+            raise DataError(f"{path}: not a readable Parquet file ({type(err).__name__}: {err}).") from None
+    _check_csv_layout(path, _first_lines(path))
+    try:
+        return pd.read_csv(path, skipinitialspace=True)
+    except pd.errors.ParserError as err:
+        raise DataError(f"{path}: cannot parse the CSV ({err}). Check that every line has as many "
+                        "fields as the header and that decimals use '.'.") from None
+    except (OSError, UnicodeDecodeError, ValueError) as err:
         raise DataError(f"{path}: cannot read the file ({type(err).__name__}: {err}).") from None
-    if frame.shape[1] == 1 and frame.columns[0].count(";") + frame.columns[0].count("\t") > 0:
-        raise DataError(f"{path}: could not split the columns; use ',' as the delimiter.")
-    return frame
 
 
 def check_names(names, where):
@@ -167,8 +208,10 @@ def load_run(path, *, time, states, inputs, rename, missing, max_gap):
     frame = read_table(path)
     frame.columns = [str(c).strip() for c in frame.columns]
     duplicated = sorted({c for c in frame.columns if list(frame.columns).count(c) > 1})
-    if duplicated:
+    if duplicated:  # Parquet; CSV headers are checked before pandas renames duplicates
         raise DataError(f"{path}: duplicate column names {duplicated}. Each column needs its own name.")
+    if len(frame) == 0:
+        raise DataError(f"{path}: the file has a header but no data rows.")
     reverse = {column: name for name, column in rename.items()}
     frame = frame.rename(columns=reverse)
     t = _column(frame, time, path)

@@ -194,17 +194,18 @@ def plot_run_overview(run, state_names, input_names):
 
 
 def plot_derivative_check(smoothed_run, raw_t, raw_x, state_names):
-    """Smoothed against raw states of one run, and their difference.
+    """Smoothed against raw states of one run, their difference, and the derivative.
 
-    Left column: the raw samples (grey dots) and the smoothed states the
-    derivatives come from (black line). Right column: raw minus smoothed on the
-    samples kept after end trimming; it should look like measurement noise, with no
-    trace of the signal left in it.
+    Left: the raw samples (grey dots) and the smoothed states the derivatives come
+    from (black line). Middle: raw minus smoothed on the samples kept after end
+    trimming; it should look like measurement noise, with no trace of the signal
+    left in it. Right: the derivative estimate (black line) over central differences
+    of the raw samples (grey dots, :func:`numpy.gradient`), which are noisy but unbiased.
 
     Parameters
     ----------
     smoothed_run : discover.pipeline.Smoothed
-        ``t`` of shape (n_kept,), ``x`` and ``x_raw`` of shape (n_kept, n_states).
+        ``t`` of shape (n_kept,), ``x``, ``x_dot`` and ``x_raw`` of shape (n_kept, n_states).
     raw_t : ndarray of shape (n_samples,)
     raw_x : ndarray of shape (n_samples, n_states)
         The run as loaded, ends included.
@@ -216,23 +217,33 @@ def plot_derivative_check(smoothed_run, raw_t, raw_x, state_names):
     """
     plt = _pyplot()
     n = len(state_names)
-    fig, axes = plt.subplots(n, 2, figsize=(9, 2.0 * n + 0.7), sharex=True, squeeze=False,
-                             gridspec_kw={"width_ratios": [3, 2]})
+    fig, axes = plt.subplots(n, 3, figsize=(11, 2.0 * n + 0.7), sharex=True, squeeze=False,
+                             gridspec_kw={"width_ratios": [3, 2, 3]})
     residual = smoothed_run.x_raw - smoothed_run.x
+    raw_slope = np.gradient(raw_x, raw_t, axis=0) if len(raw_t) > 1 else np.zeros_like(raw_x)
     for i, state in enumerate(state_names):
-        left, right = axes[i]
+        left, middle, right = axes[i]
         left.plot(raw_t, raw_x[:, i], linestyle="none", marker=".", markersize=2.5, color="0.6", label="raw")
         left.plot(smoothed_run.t, smoothed_run.x[:, i], color="black", linewidth=1.0, label="smoothed")
         left.set_ylabel(state, fontsize=8)
-        right.plot(smoothed_run.t, residual[:, i], color="0.3", linewidth=0.6)
-        right.axhline(0.0, color="black", linewidth=0.6)
-        right.set_ylabel(f"raw − smoothed\n{state}", fontsize=8)
-        for ax in (left, right):
+        middle.plot(smoothed_run.t, residual[:, i], color="0.3", linewidth=0.6)
+        middle.axhline(0.0, color="black", linewidth=0.6)
+        middle.set_ylabel(f"raw − smoothed\n{state}", fontsize=8)
+        right.plot(raw_t, raw_slope[:, i], linestyle="none", marker=".", markersize=2.0, color="0.65",
+                   label="central differences of raw")
+        right.plot(smoothed_run.t, smoothed_run.x_dot[:, i], color="black", linewidth=1.0, label="estimate")
+        right.set_ylabel(f"d({state})/dt", fontsize=8)
+        # Keep the estimate readable: the raw differences may be far noisier.
+        low, high = np.nanpercentile(smoothed_run.x_dot[:, i], [0, 100]) if len(smoothed_run.t) else (0, 0)
+        pad = 0.5 * (high - low) if high > low else 1.0
+        right.set_ylim(low - pad, high + pad)
+        for ax in (left, middle, right):
             ax.tick_params(labelsize=7)
             ax.grid(True, color="0.9", linewidth=0.6)
     axes[0, 0].legend(fontsize=7, loc="best", markerscale=3)
-    axes[-1, 0].set_xlabel("time")
-    axes[-1, 1].set_xlabel("time")
+    axes[0, 2].legend(fontsize=7, loc="best", markerscale=3)
+    for ax in axes[-1]:
+        ax.set_xlabel("time")
     fig.suptitle(f"derivative check on run {smoothed_run.name}", fontsize=10)
     fig.tight_layout()
     return fig
@@ -396,14 +407,15 @@ def _ranking(result):
     columns = [c for c in columns if c[0] in table.columns]
     rows = [[fmt(row[key]) for key, _, fmt in columns] for _, row in table.head(MAX_RANKING_ROWS).iterrows()]
     numeric = [k for k, (key, _, _) in enumerate(columns) if key not in ("candidate", "source", "support", "pareto")]
+    scored_on = "the held-out runs" if result.held_out.runs else "the training runs (none held out)"
+    caption = f"{len(table)} candidate structures"
+    if len(table) > MAX_RANKING_ROWS:
+        caption += f" (first {MAX_RANKING_ROWS}; ranking.csv has all)"
     parts = [
         _paragraph(why_chosen(table, criterion)),
         _paragraph(f"Ordered by {criterion}. ΔAICc ≤ 2: substantial support; > 10: essentially none. "
-                   "The simulation error is the mean NRMSE of the free-run simulation"
-                   + (" on the held-out runs." if result.held_out.runs else " on the training runs (none held out).")),
-        _table([label for _, label, _ in columns], rows, numeric=numeric,
-               caption=f"{len(table)} candidate structures"
-                       + (f" (first {MAX_RANKING_ROWS}; ranking.csv has all)" if len(table) > MAX_RANKING_ROWS else "")),
+                   f"The simulation error is the mean NRMSE of the free-run simulation on {scored_on}."),
+        _table([label for _, label, _ in columns], rows, numeric=numeric, caption=caption),
         _figure(lambda: plot_pareto(table), "Number of terms against held-out simulation error; the Pareto "
                                             "front joined, the best-ranked labelled #rank Δ=ΔAICc."),
     ]
@@ -469,8 +481,8 @@ def _derivative_check(result):
     ]
     if raw is not None:
         parts.append(_figure(lambda: plot_derivative_check(smoothed, raw.t, raw.x, result.model.state_names),
-                             f"Run {smoothed.name}: raw samples against the smoothed states, and their "
-                             "difference."))
+                             f"Run {smoothed.name}: raw samples against the smoothed states, their "
+                             "difference, and the derivative estimate over central differences of the raw samples."))
     return _section("derivative-check", "\n".join(parts))
 
 

@@ -29,8 +29,10 @@ from .exceptions import DataError, OutputError
 from .expressions import parse_expression
 from .model import Model
 from .selection import (
-    ILL_CONDITIONED,
     COND_LIMIT,
+    ILL_CONDITIONED,
+    Scale,
+    scaled_problem,
     block_grams,
     condition_numbers,
     cross_validate,
@@ -191,6 +193,39 @@ def fold_labels(blocks, n_folds, split):
     return blocks.positions * n_folds // per_run, split
 
 
+def check_excitation(training, where):
+    """A state or input that never moves in any training run cannot be identified."""
+    for kind, names, arrays in (("state", training.state_names, [r.x for r in training.runs]),
+                                ("input", training.input_names, [r.u for r in training.runs])):
+        for j, name in enumerate(names):
+            spread = max(np.ptp(a[:, j]) for a in arrays)
+            scale = max(1.0, max(np.abs(a[:, j]).max() for a in arrays))
+            if spread <= 1e-12 * scale:
+                raise DataError(
+                    f"{where}: {kind} {name!r} never moves in any training run (constant "
+                    f"{arrays[0][0, j]!r}); its effect cannot be identified. Remove it from "
+                    f"[data].{kind}s or add runs that excite it."
+                )
+
+
+def check_collinear_terms(blocks, library, where):
+    """Refuse a library whose columns are exactly linearly dependent on the training rows."""
+    total, count = blocks.total()
+    k = len(library)
+    scale = Scale.from_gram(total, count, k)
+    g, _ = scaled_problem(total, count, k, scale)
+    keep = np.flatnonzero(~scale.zero)
+    values, vectors = np.linalg.eigh(g[np.ix_(keep, keep)])
+    if values[0] > 1e-11 * values[-1]:
+        return
+    involved = [library.names[keep[j]] for j in np.flatnonzero(np.abs(vectors[:, 0]) > 0.05)]
+    raise DataError(
+        f"{where}: the candidate terms {involved} are collinear on the training data (a combination "
+        "of them is zero on every row), so their coefficients cannot be told apart. Remove one of "
+        "them, e.g. with [terms].variables, input_degree or degree."
+    )
+
+
 def check_library_size(library, n_rows, where):
     if len(library) >= n_rows:
         raise DataError(
@@ -206,6 +241,7 @@ def select_model(config, blocks, library):
     k = len(library)
     total, count = blocks.total()
     check_library_size(library, count, config["_source"])
+    check_collinear_terms(blocks, library, config["_source"])
     cv = None
     if sel["threshold"] == "cv":
         cv = cross_validate(
@@ -295,6 +331,7 @@ def run(source, *, progress=False):
     """
     config = load_config(source)
     training, held_out = load_dataset(config)
+    check_excitation(training, config["_source"])
     library = library_from_config(config)
     smoothed = differentiate(training, config)
     correlation = int(np.median([bootstrap.correlation_length(run.x_dot) for run in smoothed]))

@@ -74,10 +74,43 @@ def test_gap_longer_than_max_gap(tmp_path):
         load(write(tmp_path, frame), missing="interpolate")
 
 
-def test_semicolon_delimited_file(tmp_path):
+def test_semicolon_delimited_file_with_decimal_commas(tmp_path):
     path = tmp_path / "run.csv"
-    good_frame().to_csv(path, index=False, sep=";")
-    with pytest.raises(DataError, match="could not split the columns"):
+    good_frame().to_csv(path, index=False, sep=";", decimal=",")
+    with pytest.raises(DataError, match=r"run.csv: the columns are separated by semicolons and commas as decimal marks"):
+        load(path)
+
+
+def test_decimal_commas_in_a_comma_separated_file(tmp_path):
+    path = tmp_path / "run.csv"
+    path.write_text("t,x,u\n0,1,5,2\n1,2,5,3\n")
+    with pytest.raises(DataError, match=r"line 2 has 4 fields but the header has 3; are commas used as decimal marks"):
+        load(path)
+
+
+def test_duplicate_columns_named(tmp_path):
+    path = tmp_path / "run.csv"
+    path.write_text("t,x,x,u\n0,1,1,2\n1,2,2,3\n")
+    with pytest.raises(DataError, match=r"run.csv: duplicate column names \['x'\]"):
+        load(path)
+
+
+@pytest.mark.parametrize("content, fragment", [
+    (b"", "the file is empty"),
+    (b"t,x,u\n", "header but no data rows"),
+    (b"\xff\xfe\x00t\x00", "not a UTF-8 text file"),
+])
+def test_unreadable_files(tmp_path, content, fragment):
+    path = tmp_path / "run.csv"
+    path.write_bytes(content)
+    with pytest.raises(DataError, match=fragment):
+        load(path)
+
+
+def test_corrupt_parquet(tmp_path):
+    path = tmp_path / "run.parquet"
+    path.write_bytes(b"PAR1 not really")
+    with pytest.raises(DataError, match="not a readable Parquet file"):
         load(path)
 
 
