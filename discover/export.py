@@ -183,7 +183,7 @@ def to_python_module(model):
     for i in range(len(model.state_names)):
         parts = [f"{_float_code(model.coef[j, i])} * {_python_code(e._tree, variables)}"
                  for j, e in trees if model.coef[j, i] != 0]
-        # Summed in term order, starting from 0.0 as the model's matrix product does.
+        # Summed in the order of the model's terms, like its own Θ·Ξ product.
         lines.append(f"    dx[{i}] = " + (" + ".join(parts) if parts else "0.0"))
     return _MODULE_TEMPLATE.format(
         states=repr(tuple(str(s) for s in model.state_names)),

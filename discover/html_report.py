@@ -260,10 +260,14 @@ def _caution():
     return _section("caution", f'<div class="caution"><p>{esc(CAUTION)}</p></div>')
 
 
+def _ensemble_info(result):
+    """The ``ensemble`` record of the model file (members, interval level...), or {}."""
+    info = result.model.info.get("ensemble")
+    return info if isinstance(info, dict) else {}
+
+
 def _interval_level(result):
-    level = result.model.info.get("ensemble", {}).get("interval_level") if isinstance(
-        result.model.info.get("ensemble"), dict) else None
-    return level if level is not None else result.config["bootstrap"]["level"]
+    return _ensemble_info(result).get("interval_level", result.config["bootstrap"]["level"])
 
 
 def _equations(result):
@@ -277,7 +281,7 @@ def _equations(result):
         parts.append(_paragraph("The bootstrap ensemble was off ([bootstrap].members = 0): the terms have no "
                                 "inclusion probabilities or coefficient intervals.", "absent"))
     else:
-        members = model.info.get("ensemble", {}).get("members", result.config["bootstrap"]["members"])
+        members = _ensemble_info(result).get("members", result.config["bootstrap"]["members"])
         parts.append(_paragraph(
             f"Inclusion probability: the share of {members} bootstrap members that keep the term. "
             f"Interval: the central {100 * level:.0f} % of the coefficients of the members that keep it. "

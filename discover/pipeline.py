@@ -167,13 +167,16 @@ def regression_blocks(smoothed, library, sub_length, n_folds):
     Each run is cut into contiguous sub-blocks of about ``sub_length`` rows (and at
     least ``n_folds`` of them); folds and bootstrap members are sums of these Grams.
     """
-    pieces = []
+    pieces, stacked = [], []
+    k = len(library)
     for r, run in enumerate(smoothed):
-        theta = library.evaluate(run.x, run.u)
+        z = library.evaluate(run.x, run.u, append=run.x_dot)  # [Θ Ẋ], one allocation per run
         n_sub = min(len(run.t), max(n_folds, len(run.t) // sub_length))
         for rows in np.array_split(np.arange(len(run.t)), n_sub):
-            pieces.append((r, theta[rows], run.x_dot[rows]))
-    return block_grams(pieces), pieces
+            block = z[rows[0]: rows[-1] + 1]
+            stacked.append((r, block, None))
+            pieces.append((r, block[:, :k], block[:, k:]))
+    return block_grams(stacked, n_terms=k), pieces
 
 
 def fold_labels(blocks, n_folds, split):

@@ -102,14 +102,20 @@ def stlsq_gram(gram, cross, *, threshold, ridge=0.0, max_iter=20, exclude=None):
     if exclude is not None:
         support[exclude] = False
     converged = True
+    # Every target starts from the same active set: one solve with all right-hand sides.
+    start = np.flatnonzero(support[:, 0])
+    first = _solve_spd(gram[np.ix_(start, start)] + ridge * np.eye(start.size), cross[start]) if start.size else None
     for i in range(n_targets):
         active = support[:, i]
-        for _ in range(max_iter):
+        for iteration in range(max_iter):
             index = np.flatnonzero(active)
             if index.size == 0:
                 break
-            sub = gram[np.ix_(index, index)] + ridge * np.eye(index.size)
-            keep = np.abs(_solve_spd(sub, cross[index, i])) >= thresholds[i]
+            if iteration == 0:
+                solution = first[:, i]
+            else:
+                solution = _solve_spd(gram[np.ix_(index, index)] + ridge * np.eye(index.size), cross[index, i])
+            keep = np.abs(solution) >= thresholds[i]
             if keep.all():
                 break
             active[index[~keep]] = False
@@ -166,20 +172,22 @@ class BlockGrams:
         return np.tensordot(weights, self.grams, axes=1), float(weights @ self.counts)
 
 
-def block_grams(blocks):
+def block_grams(blocks, n_terms=None):
     """Block Grams from an iterable of ``(run_index, theta, x_dot)`` blocks.
 
-    One product ``[Θ Ẋ]ᵀ[Θ Ẋ]`` per block: it costs about as much as ΘᵀΘ alone.
+    One product ``[Θ Ẋ]ᵀ[Θ Ẋ]`` per block: it costs about as much as ΘᵀΘ alone. A block
+    may also come as ``(run_index, z, None)`` with z = [Θ Ẋ] already side by side
+    (no copy); then ``n_terms`` says where Θ ends.
     """
     grams, counts, runs, positions = [], [], [], []
-    n_terms = None
     for run_index, theta, x_dot in blocks:
-        z = np.hstack([theta, x_dot])
+        z = theta if x_dot is None else np.hstack([theta, x_dot])
+        if x_dot is not None:
+            n_terms = theta.shape[1]
         grams.append(z.T @ z)
         counts.append(len(z))
         positions.append(positions[-1] + 1 if runs and runs[-1] == run_index else 0)
         runs.append(run_index)
-        n_terms = theta.shape[1]
     return BlockGrams(np.array(grams), np.array(counts), np.array(runs), n_terms, np.array(positions))
 
 

@@ -42,12 +42,19 @@ class Library:
     def __len__(self):
         return len(self.terms)
 
-    def evaluate(self, x, u):
-        """Θ of shape (n_samples, n_terms) from x (n_samples, n_states), u (n_samples, n_inputs)."""
+    def evaluate(self, x, u, *, append=None):
+        """Θ of shape (n_samples, n_terms) from x (n_samples, n_states), u (n_samples, n_inputs).
+
+        With ``append`` (n_samples, n_extra), returns [Θ append] in one allocation, the
+        layout the Gram products want, with no copy of Θ.
+        """
         columns = columns_of(self.state_names, self.input_names, x, u)
-        theta = np.empty((x.shape[0], len(self.terms)))
+        extra = 0 if append is None else append.shape[1]
+        theta = np.empty((x.shape[0], len(self.terms) + extra))
         for j, term in enumerate(self.terms):
             theta[:, j] = term.evaluate(columns)
+        if extra:
+            theta[:, len(self.terms):] = append
         return theta
 
     def subset(self, indices):

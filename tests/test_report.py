@@ -6,17 +6,22 @@ PNG specification (ISO/IEC 15948, section 5.2).
 """
 
 import base64
+import html
 import io
-import tomllib
 from html.parser import HTMLParser
 from pathlib import Path
 
 import numpy as np
 import pytest
-from PIL import Image
+from PIL import Image  # Pillow, a dependency of matplotlib
 
 import discover
 from discover import html_report
+
+try:
+    import tomllib
+except ModuleNotFoundError:  # Python 3.10
+    import tomli as tomllib
 
 ROOT = Path(__file__).resolve().parents[1]
 CONFIGS = ROOT / "configs"
@@ -201,8 +206,6 @@ def test_names_from_the_data_are_escaped(hostile_folder, tmp_path):
     check_self_contained(page, text)
     assert "script" not in page.tags
     # html.escape (standard library) is the reference for the escaped forms.
-    import html
-
     for raw in [script] + list(names.values()):
         assert raw not in text, raw
         assert html.escape(raw, quote=True) in text, raw
