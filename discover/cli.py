@@ -14,6 +14,8 @@ examples:
   discover run configs/ship.toml                 identify the ship-steering demo
   discover run configs/bioreactor.toml --out out/bio --force
   discover rank out/ship more_hypotheses.toml    score extra structures, no refit of the rest
+  discover export out/ship/model.json --to python --out ship_model.py
+  discover export out/ship/model.json --to linearize --x-op=0,0 --u-op=0
   discover simulate out/ship/model.json data_demo/ship/heldout_sine.csv
 
 A failure caused by the input (config, data, model file) prints one line and exits
@@ -44,6 +46,18 @@ def build_parser():
     rank.add_argument("hypotheses", help="TOML file with [[ranking.hypotheses]] entries")
     rank.add_argument("--save", help="where to write the combined table "
                                      "(default: OUT_DIR/ranking_updated.csv)")
+    from .export import FORMATS
+
+    exp = sub.add_parser("export", help="export a saved model: Python module, LaTeX, A/B matrices",
+                         description="Export model.json as a standalone Python module (rhs for "
+                                     "scipy's solve_ivp), LaTeX equations, the A, B matrices of a "
+                                     "linear model, or a linearization at an operating point.")
+    exp.add_argument("model", help="path to model.json")
+    exp.add_argument("--to", required=True, choices=FORMATS)
+    exp.add_argument("--out", help="file to write (.csv for matrices as a table; default: standard output)")
+    exp.add_argument("--x-op", dest="x_op", help="state operating point, comma-separated in state order "
+                                                 "(write --x-op=-1,2 for a leading minus)")
+    exp.add_argument("--u-op", dest="u_op", help="input operating point, comma-separated in input order")
     sim = sub.add_parser("simulate", help="simulate a saved model on a run's recorded input",
                          description="Simulate model.json from the first sample of a run file, "
                                      "with that run's recorded input, and print the fit.")
@@ -82,6 +96,12 @@ def _rank(args):
     print(f"Combined ranking written to {target}")
 
 
+def _export(args):
+    from .export import export_main
+
+    export_main(args)
+
+
 def _simulate(args):
     from pathlib import Path
 
@@ -112,7 +132,7 @@ def main(argv=None):
     if threading.current_thread() is threading.main_thread():
         signal.signal(signal.SIGTERM, _terminate)
     try:
-        {"run": _run, "rank": _rank, "simulate": _simulate}[args.command](args)
+        {"run": _run, "rank": _rank, "export": _export, "simulate": _simulate}[args.command](args)
     except DiscoverError as err:
         if args.debug:
             raise

@@ -125,6 +125,7 @@ SCHEMA = {
     "output": {
         "dir": Key("str", None, nullable=True),
         "figures": Key("bool", True),
+        "report": Key("bool", True),  # the self-contained report.html
     },
 }
 

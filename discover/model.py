@@ -66,8 +66,10 @@ class Model:
         x2 = x.reshape(1, -1) if single else x
         if u is None:
             u = np.empty((len(x2), 0))
-        u2 = np.broadcast_to(np.asarray(u, dtype=float).reshape(-1, len(self.input_names)),
-                             (len(x2), len(self.input_names)))
+        n_inputs = len(self.input_names)
+        u2 = np.asarray(u, dtype=float)
+        u2 = np.empty((len(x2), 0)) if n_inputs == 0 else np.broadcast_to(u2.reshape(-1, n_inputs),
+                                                                            (len(x2), n_inputs))
         dx = self._evaluate(np.hstack([x2, u2])) @ self._coef_used
         return dx[0] if single else dx
 

@@ -657,6 +657,10 @@ def _write_all(result, folder):
     (folder / "summary.txt").write_text(report.summary(result) + "\n")
     if result.config["output"]["figures"]:
         report.write_figures(result, folder)
+    if result.config["output"]["report"]:
+        from . import html_report
+
+        html_report.write_report(result, folder)
 
 
 def rank_more(out_dir, hypotheses_path, *, criterion=None):
