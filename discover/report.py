@@ -124,10 +124,10 @@ def plot_held_out(item, state_names, *, band=None):
     fig, axes = plt.subplots(n, 1, figsize=(7, 2.2 * n + 0.6), sharex=True, squeeze=False)
     sim = item["simulation"]
     for i, (ax, state) in enumerate(zip(axes[:, 0], state_names)):
-        ax.plot(item["t"], item["x"][:, i], color="0.6", linewidth=1.0, label="measured")
-        ax.plot(sim.t, sim.x[:, i], color="black", linestyle="--", linewidth=1.2, label="simulated")
         if band is not None:
-            ax.fill_between(sim.t, band[0][:, i], band[1][:, i], color="0.8", label="band")
+            ax.fill_between(sim.t, band[0][:, i], band[1][:, i], color="0.85", label="ensemble band", zorder=1)
+        ax.plot(item["t"], item["x"][:, i], color="0.45", linewidth=0.8, label="measured", zorder=2)
+        ax.plot(sim.t, sim.x[:, i], color="black", linestyle="--", linewidth=1.2, label="simulated", zorder=3)
         ax.set_ylabel(state)
         fit = item["metrics"]["fit_percent"][i]
         ax.set_title(f"{state}: fit {fit:.1f} %" if np.isfinite(fit) else f"{state}: diverged", fontsize=9)
