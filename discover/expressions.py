@@ -53,7 +53,7 @@ class Expression:
         Returns an ndarray of shape (n_samples,); a constant expression is
         broadcast to the length of the first column given.
         """
-        value = _evaluate(self._tree, columns)
+        value = evaluate_tree(self._tree, columns)
         n_samples = len(next(iter(columns.values()))) if columns else 1
         return np.broadcast_to(np.asarray(value, dtype=float), (n_samples,)).copy()
 
@@ -139,13 +139,14 @@ def _check(node, text, allowed, names, where):
         )
 
 
-def _evaluate(node, columns):
+def evaluate_tree(node, columns, functions=FUNCTIONS):
+    """Value of a checked tree on ``name -> array`` columns, calls looked up in ``functions``."""
     if isinstance(node, ast.Constant):
         return float(node.value)
     if isinstance(node, ast.Name):
         return columns[node.id]
     if isinstance(node, ast.BinOp):
-        left, right = _evaluate(node.left, columns), _evaluate(node.right, columns)
+        left, right = evaluate_tree(node.left, columns, functions), evaluate_tree(node.right, columns, functions)
         op = type(node.op)
         if op is ast.Add:
             return left + right
@@ -154,12 +155,12 @@ def _evaluate(node, columns):
         if op is ast.Mult:
             return left * right
         if op is ast.Div:
-            return left / right
+            return np.divide(left, right)  # 1/0 of two constants gives inf, not an exception
         return _power(left, right)
     if isinstance(node, ast.UnaryOp):
-        value = _evaluate(node.operand, columns)
+        value = evaluate_tree(node.operand, columns, functions)
         return -value if isinstance(node.op, ast.USub) else value
-    return FUNCTIONS[node.func.id](_evaluate(node.args[0], columns))
+    return functions[node.func.id](evaluate_tree(node.args[0], columns, functions))
 
 
 def _power(base, exponent):

@@ -24,7 +24,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .expressions import FUNCTIONS, Expression, _power
+from .expressions import FUNCTIONS, Expression
+from .expressions import evaluate_tree as _evaluate_tree
 
 #: Functions of derivative trees: those of term expressions, plus ``sign`` (from d|a|).
 DERIVATIVE_FUNCTIONS = dict(FUNCTIONS, sign=np.sign)
@@ -94,30 +95,8 @@ def derivative(expression, name):
 
 
 def evaluate_tree(node, columns):
-    """Value of a checked tree (or a derivative tree) on ``name -> array`` columns."""
-    if isinstance(node, ast.Constant):
-        return float(node.value)
-    if isinstance(node, ast.Name):
-        return columns[node.id]
-    if isinstance(node, ast.BinOp):
-        left, right = evaluate_tree(node.left, columns), evaluate_tree(node.right, columns)
-        op = type(node.op)
-        if op is ast.Add:
-            return left + right
-        if op is ast.Sub:
-            return left - right
-        if op is ast.Mult:
-            return left * right
-        if op is ast.Div:
-            return np.divide(left, right)
-        return _power(left, right)
-    if isinstance(node, ast.UnaryOp):
-        value = evaluate_tree(node.operand, columns)
-        return -value if isinstance(node.op, ast.USub) else value
-    if isinstance(node, ast.Call) and node.func.id in DERIVATIVE_FUNCTIONS:
-        return DERIVATIVE_FUNCTIONS[node.func.id](evaluate_tree(node.args[0], columns))
-    # Trees come from the whitelist parser or from this module; anything else is a bug.
-    raise TypeError(f"unexpected node {ast.dump(node)} in an expression tree")
+    """Value of a checked tree (or a derivative tree, which may call sign()) on columns."""
+    return _evaluate_tree(node, columns, DERIVATIVE_FUNCTIONS)
 
 
 def column_names(node, found=None):
