@@ -170,7 +170,16 @@ def regression_blocks(smoothed, library, sub_length, n_folds):
     pieces, stacked = [], []
     k = len(library)
     for r, run in enumerate(smoothed):
-        z = library.evaluate(run.x, run.u, append=run.x_dot)  # [Θ Ẋ], one allocation per run
+        with np.errstate(all="ignore"):
+            z = library.evaluate(run.x, run.u, append=run.x_dot)  # [Θ Ẋ], one allocation per run
+        bad = ~np.isfinite(z[:, :k])
+        if bad.any():
+            row, j = np.argwhere(bad)[0]
+            raise DataError(
+                f"run {run.name!r}: the candidate term {library.names[j]!r} is not finite at row "
+                f"{row + 1} of the trimmed run (value {z[row, j]!r}); a division by zero or a log/sqrt "
+                "of a negative number? Change the term or the data's range."
+            )
         n_sub = min(len(run.t), max(n_folds, len(run.t) // sub_length))
         for rows in np.array_split(np.arange(len(run.t)), n_sub):
             block = z[rows[0]: rows[-1] + 1]

@@ -66,6 +66,14 @@ def test_code_in_a_custom_term_is_refused_and_nothing_runs(tmp_path, monkeypatch
                       "terms": {"custom": [text]}}, "cfg.toml")
 
 
+def test_term_that_is_not_finite_on_the_data_is_named(tmp_path):
+    write_decay(tmp_path, u=np.sin(np.linspace(0, 10, 201)) - 2.0)
+    config = small_config(tmp_path)
+    config["terms"] = {"degree": 1, "custom": ["log(u)"]}
+    with pytest.raises(DataError, match=r"run 'a': the candidate term 'log\(u\)' is not finite at row 1"):
+        discover.run(config)
+
+
 def test_crash_in_a_stage_leaves_no_output_and_keeps_the_previous_result(tmp_path, monkeypatch):
     out = tmp_path / "ship"
     assert main(["run", str(ROOT / "configs" / "ship.toml"), "--out", str(out)]) == 0
