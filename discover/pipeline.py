@@ -116,14 +116,21 @@ def _describe_options(options):
     return "".join(f"{key} = {value!r}, " for key, value in options.items())
 
 
-def differentiate(dataset, config):
-    """Smooth and differentiate every run; trim the unreliable ends."""
+def end_trim(config):
+    section = config["derivatives"]
+    return section["trim"] if section["trim"] is not None else default_trim(section["method"], derivative_options(config))
+
+
+def differentiate(dataset, config, *, trimmed=True, progress=False):
+    """Smooth and differentiate every run; trim the unreliable ends unless ``trimmed`` is False."""
+    from tqdm.auto import tqdm
+
     section = config["derivatives"]
     method, options = section["method"], derivative_options(config)
-    trim = section["trim"] if section["trim"] is not None else default_trim(method, options)
+    trim = end_trim(config)
     needed = max(min_samples(method, options), 2 * trim + 3)
     result = []
-    for run in dataset.runs:
+    for run in tqdm(dataset.runs, desc="derivatives", disable=None if progress else True, leave=False):
         if len(run.t) < needed:
             raise DataError(
                 f"{run.source}: {len(run.t)} samples is too few for [derivatives].method = "
@@ -136,9 +143,15 @@ def differentiate(dataset, config):
             x_smooth, x_dot = DERIVATIVE_METHODS[method](run.t - run.t[0], run.x, **options)
         except DataError as err:
             raise DataError(f"{run.source}: {err}") from None
-        keep = slice(trim, len(run.t) - trim)
-        result.append(Smoothed(run.name, run.t[keep], x_smooth[keep], x_dot[keep], run.u[keep], run.x[keep]))
-    return result
+        result.append(Smoothed(run.name, run.t, x_smooth, x_dot, run.u, run.x))
+    return [trim_ends(s, trim) for s in result] if trimmed else result
+
+
+def trim_ends(smoothed, trim):
+    """The run without ``trim`` samples at each end, where smoothing is least reliable."""
+    keep = slice(trim, len(smoothed.t) - trim)
+    s = smoothed
+    return Smoothed(s.name, s.t[keep], s.x[keep], s.x_dot[keep], s.u[keep], s.x_raw[keep])
 
 
 def library_from_config(config, terms=None, label="[terms]"):
@@ -345,7 +358,7 @@ def run(source, *, progress=False):
     training, held_out = load_dataset(config)
     check_excitation(training, config["_source"])
     library = library_from_config(config)
-    smoothed = differentiate(training, config)
+    smoothed = differentiate(training, config, progress=progress)
     correlation = int(np.median([bootstrap.correlation_length(run.x_dot) for run in smoothed]))
     sub_length, block_length = bootstrap.block_plan(
         [len(run.t) for run in smoothed], correlation, config["bootstrap"]["block_length"]
@@ -366,18 +379,16 @@ def run(source, *, progress=False):
         model = ensemble_model(config, single, ensemble, blocks)
     limits = state_limits(training, config["simulation"]["divergence_factor"])
     config["simulation"]["atol_resolved"] = absolute_tolerance(config, training)
-    # Validation starts from the smoothed state; differentiate() trimmed the ends,
-    # so smooth the held-out runs again without trimming for their first sample.
-    untrimmed = dict(config, derivatives=dict(config["derivatives"], trim=0))
-    held_smoothed = differentiate(held_out, untrimmed) if held_out.runs else []
-    validation = validate_held_out(config, model, held_smoothed, held_out, limits)
+    # Simulations start from the smoothed state, so held-out runs are kept untrimmed here.
+    held_full = differentiate(held_out, config, trimmed=False)
+    validation = validate_held_out(config, model, held_full, held_out, limits)
     if ensemble is not None and config["bootstrap"]["bands"]:
         add_prediction_bands(config, model, ensemble, validation, limits, measurement_noise(smoothed))
     ranking_table, candidates = None, []
     if config["ranking"]["enabled"]:
         candidates = collect_candidates(config, model, blocks, pieces, library, smoothed, cv)
         ranking_table = rank(config, candidates, model, training, held_out,
-                             held_out_smoothed(config, held_out), limits, ensemble, library)
+                             held_out_smoothed(config, held_full), limits, ensemble, library)
         if not held_out.runs:
             warnings.append("The ranking scored candidates on the training runs (no run is held out).")
     warnings = data_warnings(training) + warnings
@@ -395,13 +406,10 @@ def run(source, *, progress=False):
                   single_model=single, ensemble=ensemble, ranking=ranking_table, candidates=candidates)
 
 
-def held_out_smoothed(config, held_out):
-    """(trimmed smoothed run, smoothed states on every sample) for each held-out run."""
-    if not held_out.runs:
-        return []
-    trimmed = differentiate(held_out, config)
-    untrimmed = differentiate(held_out, dict(config, derivatives=dict(config["derivatives"], trim=0)))
-    return [(s, u.x) for s, u in zip(trimmed, untrimmed)]
+def held_out_smoothed(config, full):
+    """(trimmed smoothed run, smoothed states on every sample) from untrimmed smoothed runs."""
+    trim = end_trim(config)
+    return [(trim_ends(s, trim), s.x) for s in full]
 
 
 def hypothesis_candidate(config, hypothesis, model, smoothed):
@@ -452,7 +460,7 @@ def rank(config, candidates, model, training, held_out, held_smoothed, limits, e
     """Score candidates on the held-out runs (training runs if none) and order them."""
     runs, smoothed = held_out.runs, held_smoothed
     if not runs:  # scored on the training runs instead; run() warns about it
-        runs, smoothed = training.runs, held_out_smoothed(config, training)
+        runs, smoothed = training.runs, held_out_smoothed(config, differentiate(training, config, trimmed=False))
     inclusion = ensemble.summary.inclusion_probability if ensemble is not None else None
     scores = ranking.score_candidates(
         candidates, model.state_names, model.input_names, runs, smoothed,
@@ -717,7 +725,8 @@ def rank_more(out_dir, hypotheses_path, *, criterion=None):
     limits = state_limits(training, config["simulation"]["divergence_factor"])
     config["simulation"]["atol_resolved"] = absolute_tolerance(config, training)
     scores = ranking.score_candidates(candidates, model.state_names, model.input_names, held_out.runs,
-                                      held_out_smoothed(config, held_out), simulation=config["simulation"],
+                                      held_out_smoothed(config, differentiate(held_out, config, trimmed=False)),
+                                      simulation=config["simulation"],
                                       limits=limits, horizon=config["ranking"]["horizon"])
     new = ranking.score_table(candidates, scores, criterion)
     combined = pd.concat([old, new], ignore_index=True)
