@@ -91,7 +91,15 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
     x = np.full((n_members, len(t), n_states), np.nan)
     stopped_at = np.full(n_members, np.nan)
     atol_state = np.broadcast_to(np.asarray(atol, dtype=float), (n_states,))
-    active, y, start, message = np.arange(n_members), x0.ravel(), t[0], ""
+    active, start, message = np.arange(n_members), t[0], ""
+    if limits is not None:
+        # A member that starts outside the region can never cross into it: stop it at once.
+        center, half_width = limits
+        outside = ~np.all(np.isfinite(x0) & (np.abs(x0 - center) <= half_width), axis=1)
+        x[outside, 0] = x0[outside]
+        stopped_at[outside] = t[0]
+        active = active[~outside]
+    y = x0[active].ravel()
     while active.size:
         members = active.copy()
 

@@ -156,3 +156,48 @@ def test_random_config_validates_or_raises_a_config_error(doc):
         validate(doc, "fuzz.toml")
     except ConfigError as err:
         assert str(err).startswith("fuzz.toml: ")
+
+
+def test_threshold_that_removes_every_term_is_reported_not_fatal(tmp_path):
+    write_decay(tmp_path)
+    write_decay(tmp_path, "b.csv", u=np.cos(np.linspace(0, 10, 201)))
+    config = small_config(tmp_path, held_out=["b"])
+    config["selection"] = {"threshold": 50.0}
+    config["bootstrap"] = {"members": 10}
+    config["ranking"] = {"enabled": True, "sr3": False}
+    result = discover.run(config)
+    assert not result.model.coef.any()
+    assert any("fell below the threshold" in w for w in result.warnings)
+    assert "d(x)/dt = 0" in report.summary(result)
+    out = discover.write_outputs(result, tmp_path / "out")
+    assert (out / "model.json").exists() and (out / "report.html").exists()
+
+
+def test_diverging_model_is_reported_in_outputs(tmp_path):
+    # dx/dt = +x (fitted on a growing run) diverges on a held-out run that starts far out.
+    t = np.linspace(0, 5, 201)
+    for name, x0 in (("a", 1.0), ("b", 1e4)):
+        pd.DataFrame({"t": t, "x": x0 * np.exp(t), "u": np.sin(t)}).to_csv(tmp_path / f"{name}.csv", index=False)
+    config = small_config(tmp_path, held_out=["b"])
+    config["simulation"] = {"divergence_factor": 2.0}
+    result = discover.run(config)
+    assert result.validation[0]["simulation"].diverged
+    assert any("diverged" in w for w in result.warnings)
+    out = discover.write_outputs(result, tmp_path / "out")
+    metrics = pd.read_csv(out / "heldout_metrics.csv")
+    assert metrics["diverged"].all()
+    assert "diverged" in (out / "report.html").read_text()
+
+
+def test_markup_in_a_column_name_is_escaped_in_the_report(tmp_path):
+    from discover.html_report import render_report
+
+    name = "<img src=x onerror=alert(1)>"
+    t = np.linspace(0, 10, 201)
+    for run in ("a", "b"):
+        pd.DataFrame({"t": t, name: np.exp(-t) * (2 if run == "b" else 1), "u": np.sin(t)}).to_csv(
+            tmp_path / f"{run}.csv", index=False)
+    config = small_config(tmp_path, states=["x"], rename={"x": name}, held_out=["b"])
+    config["ranking"] = {"enabled": False}
+    page = render_report(discover.run(config))
+    assert name not in page and "&lt;img src=x onerror=alert(1)&gt;" in page
