@@ -142,11 +142,17 @@ def _fit_batch(grams, weights, counts, n_terms, available, thresholds, ridge, ma
             for gram, w, mask in zip(member_grams, weights, available)]
 
 
-def fit_ensemble(block_set, weights, available, thresholds, *, ridge, max_iter, n_jobs=1, progress=False):
+def _fit_batch_task(batch, grams, weights, counts, n_terms, available, thresholds, ridge, max_iter):
+    return _fit_batch(grams, weights[batch], counts, n_terms, available[batch], thresholds, ridge, max_iter)
+
+
+def fit_ensemble(block_set, weights, available, thresholds, *, ridge, max_iter, n_jobs=1, progress=False,
+                 client=None):
     """Fit every member from its weighted sum of block Grams.
 
-    Members are fitted in batches (one joblib task per batch) and collected in member
-    order, so the result does not depend on ``n_jobs``.
+    Members are fitted in batches (one joblib task per batch, or one Dask task per batch
+    when ``client`` is a ``dask.distributed.Client``) and collected in member order, so
+    the result does not depend on ``n_jobs`` or the number of workers.
 
     Returns
     -------
@@ -157,6 +163,12 @@ def fit_ensemble(block_set, weights, available, thresholds, *, ridge, max_iter, 
 
     n_members = len(weights)
     batches = np.array_split(np.arange(n_members), min(n_members, 20))
+    if client is not None:
+        from .compute import map_in_order
+
+        done = map_in_order(client, _fit_batch_task, batches, block_set.grams, weights, block_set.counts,
+                            block_set.n_terms, available, thresholds, ridge, max_iter)
+        return np.array([coef for batch in done for coef in batch])
     tasks = (
         delayed(_fit_batch)(block_set.grams, weights[b], block_set.counts, block_set.n_terms,
                             available[b], thresholds, ridge, max_iter)

@@ -122,6 +122,13 @@ SCHEMA = {
         "libraries": Key("table_list", []),
         "hypotheses": Key("table_list", []),
     },
+    "compute": {
+        # None: this process; "local": a Dask LocalCluster; "tcp://host:8786": that scheduler.
+        "scheduler": Key("str", None, nullable=True),
+        "workers": Key("int", 2, minimum=1, maximum=1024),  # LocalCluster only
+        "processes": Key("bool", True),  # LocalCluster only: worker processes, not threads
+        "timeout": Key("float", 30.0, minimum=1.0),  # seconds to reach a remote scheduler
+    },
     "output": {
         "dir": Key("str", None, nullable=True),
         "figures": Key("bool", True),

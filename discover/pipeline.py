@@ -21,7 +21,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from . import bootstrap, ranking, report
+from . import bootstrap, compute, ranking, report
 from .config import load_config, threshold_grid, to_toml
 from .data import load_dataset
 from .derivatives import DERIVATIVE_METHODS, default_trim, min_samples
@@ -31,6 +31,7 @@ from .model import Model
 from .selection import (
     COND_LIMIT,
     ILL_CONDITIONED,
+    BlockGrams,
     Scale,
     scaled_problem,
     block_grams,
@@ -174,12 +175,23 @@ def library_from_config(config, terms=None, label="[terms]"):
     )
 
 
-def regression_blocks(smoothed, library, sub_length, n_folds):
+def regression_blocks(smoothed, library, sub_length, n_folds, client=None):
     """Evaluate the library once per run and keep one augmented Gram per sub-block.
 
     Each run is cut into contiguous sub-blocks of about ``sub_length`` rows (and at
     least ``n_folds`` of them); folds and bootstrap members are sums of these Grams.
+    With a Dask ``client`` each run's Grams are a task and no rows come back
+    (``pieces`` is then None).
     """
+    if client is not None:
+        from .compute import map_in_order
+
+        per_run = map_in_order(client, _run_grams, list(enumerate(smoothed)), library, sub_length, n_folds)
+        grams = [g for blocks in per_run for g in blocks.grams]
+        counts = [c for blocks in per_run for c in blocks.counts]
+        runs = [r for r, blocks in enumerate(per_run) for _ in blocks.counts]
+        positions = [p for blocks in per_run for p in blocks.positions]
+        return BlockGrams(np.array(grams), np.array(counts), np.array(runs), len(library), np.array(positions)), None
     pieces, stacked = [], []
     k = len(library)
     for r, run in enumerate(smoothed):
@@ -199,6 +211,13 @@ def regression_blocks(smoothed, library, sub_length, n_folds):
             stacked.append((r, block, None))
             pieces.append((r, block[:, :k], block[:, k:]))
     return block_grams(stacked, n_terms=k), pieces
+
+
+def _run_grams(item, library, sub_length, n_folds):
+    """One run's sub-block Grams (a Dask task)."""
+    r, run = item
+    blocks, _ = regression_blocks([run], library, sub_length, n_folds)
+    return blocks
 
 
 def fold_labels(blocks, n_folds, split):
@@ -355,6 +374,11 @@ def run(source, *, progress=False):
         written; see :func:`write_outputs` (the CLI does both).
     """
     config = load_config(source)
+    with compute.cluster(config) as client:
+        return _run(config, client, progress)
+
+
+def _run(config, client, progress):
     training, held_out = load_dataset(config)
     check_excitation(training, config["_source"])
     library = library_from_config(config)
@@ -363,7 +387,10 @@ def run(source, *, progress=False):
     sub_length, block_length = bootstrap.block_plan(
         [len(run.t) for run in smoothed], correlation, config["bootstrap"]["block_length"]
     )
-    blocks, pieces = regression_blocks(smoothed, library, sub_length, config["selection"]["cv_folds"])
+    n_folds = config["selection"]["cv_folds"]
+    blocks, pieces = regression_blocks(smoothed, library, sub_length, n_folds, client)
+    if pieces is None and (config["bootstrap"]["resample"] == "rows" or config["ranking"]["sr3"]):
+        pieces = regression_blocks(smoothed, library, sub_length, n_folds)[1]  # rows, on the client
     coef, thresholds, cv, split, warnings = select_model(config, blocks, library)
     info = {
         "threshold": {s: float(v) for s, v in zip(training.state_names, thresholds)},
@@ -375,7 +402,7 @@ def run(source, *, progress=False):
     ensemble = None
     model = single
     if config["bootstrap"]["members"] > 0:
-        ensemble = run_ensemble(config, blocks, pieces, library, thresholds, block_length, progress)
+        ensemble = run_ensemble(config, blocks, pieces, library, thresholds, block_length, progress, client)
         model = ensemble_model(config, single, ensemble, blocks)
     limits = state_limits(training, config["simulation"]["divergence_factor"])
     config["simulation"]["atol_resolved"] = absolute_tolerance(config, training)
@@ -482,7 +509,7 @@ class Ensemble:
     weights: np.ndarray | None
 
 
-def run_ensemble(config, blocks, pieces, library, thresholds, block_length, progress):
+def run_ensemble(config, blocks, pieces, library, thresholds, block_length, progress, client=None):
     """Fit the bootstrap members at the selected thresholds."""
     boot, sel = config["bootstrap"], config["selection"]
     rng = np.random.default_rng(config["seed"])
@@ -501,7 +528,7 @@ def run_ensemble(config, blocks, pieces, library, thresholds, block_length, prog
         available = bootstrap.library_masks(n, k, boot["library_fraction"], rng)
         coef = bootstrap.fit_ensemble(
             blocks, weights, available, thresholds, ridge=sel["ridge"], max_iter=sel["max_iter"],
-            n_jobs=boot["n_jobs"], progress=progress,
+            n_jobs=boot["n_jobs"], progress=progress, client=client,
         )
     summary = bootstrap.summarize(coef, available, boot["level"])
     return Ensemble(coef, available, summary, scheme, block_length if scheme == "blocks" else None, weights)
