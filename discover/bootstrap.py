@@ -135,15 +135,19 @@ def fit_member(gram, count, n_terms, available, thresholds, ridge, max_iter):
     return coef
 
 
-def _fit_batch(grams, weights, counts, n_terms, available, thresholds, ridge, max_iter):
-    # One product gives every member's Gram: (members, blocks) @ (blocks, p*p).
-    member_grams = (weights @ grams.reshape(len(grams), -1)).reshape(len(weights), *grams.shape[1:])
-    return [fit_member(gram, float(w @ counts), n_terms, mask, thresholds, ridge, max_iter)
-            for gram, w, mask in zip(member_grams, weights, available)]
+def member_grams(grams, weights):
+    """Every member's Gram in one product: (members, blocks) @ (blocks, p*p)."""
+    return (weights @ grams.reshape(len(grams), -1)).reshape(len(weights), *grams.shape[1:])
 
 
-def _fit_batch_task(batch, grams, weights, counts, n_terms, available, thresholds, ridge, max_iter):
-    return _fit_batch(grams, weights[batch], counts, n_terms, available[batch], thresholds, ridge, max_iter)
+def _fit_batch(grams_of_members, counts_of_members, n_terms, available, thresholds, ridge, max_iter):
+    return [fit_member(gram, count, n_terms, mask, thresholds, ridge, max_iter)
+            for gram, count, mask in zip(grams_of_members, counts_of_members, available)]
+
+
+def _fit_batch_task(batch, n_terms, thresholds, ridge, max_iter):
+    grams_of_members, counts_of_members, available = batch
+    return _fit_batch(grams_of_members, counts_of_members, n_terms, available, thresholds, ridge, max_iter)
 
 
 def fit_ensemble(block_set, weights, available, thresholds, *, ridge, max_iter, n_jobs=1, progress=False,
@@ -163,15 +167,16 @@ def fit_ensemble(block_set, weights, available, thresholds, *, ridge, max_iter, 
 
     n_members = len(weights)
     batches = np.array_split(np.arange(n_members), min(n_members, 20))
+    # The members' Grams in one product here, so that every way of fitting them sees the same bits.
+    all_grams, all_counts = member_grams(block_set.grams, weights), weights @ block_set.counts
     if client is not None:
         from .compute import map_in_order
 
-        done = map_in_order(client, _fit_batch_task, batches, block_set.grams, weights, block_set.counts,
-                            block_set.n_terms, available, thresholds, ridge, max_iter)
+        items = [(all_grams[b], all_counts[b], available[b]) for b in batches]
+        done = map_in_order(client, _fit_batch_task, items, block_set.n_terms, thresholds, ridge, max_iter)
         return np.array([coef for batch in done for coef in batch])
     tasks = (
-        delayed(_fit_batch)(block_set.grams, weights[b], block_set.counts, block_set.n_terms,
-                            available[b], thresholds, ridge, max_iter)
+        delayed(_fit_batch)(all_grams[b], all_counts[b], block_set.n_terms, available[b], thresholds, ridge, max_iter)
         for b in batches
     )
     results = []
