@@ -226,7 +226,7 @@ def load_run(path, *, time, states, inputs, rename, missing, max_gap):
         row = int(np.flatnonzero(steps <= 0)[0]) + 1
         what = "repeats" if steps[row - 1] == 0 else "goes backwards"
         raise DataError(
-            f"{path}: time column {time!r} {what} at row {row + 1} ({t[row - 1]!r} then {t[row]!r}). "
+            f"{path}: time column {time!r} {what} at row {row + 1} ({float(t[row - 1])!r} then {float(t[row])!r}). "
             "Time must increase strictly; remove duplicated samples or split the run."
         )
     n_states = len(states)

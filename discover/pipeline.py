@@ -202,7 +202,7 @@ def regression_blocks(smoothed, library, sub_length, n_folds, client=None):
             row, j = np.argwhere(bad)[0]
             raise DataError(
                 f"run {run.name!r}: the candidate term {library.names[j]!r} is not finite at row "
-                f"{row + 1} of the trimmed run (value {z[row, j]!r}); a division by zero or a log/sqrt "
+                f"{row + 1} of the trimmed run (value {float(z[row, j])!r}); a division by zero or a log/sqrt "
                 "of a negative number? Change the term or the data's range."
             )
         n_sub = min(len(run.t), max(n_folds, len(run.t) // sub_length))
@@ -247,7 +247,7 @@ def check_excitation(training, where):
             if spread <= 1e-12 * scale:
                 raise DataError(
                     f"{where}: {kind} {name!r} never moves in any training run (constant "
-                    f"{arrays[0][0, j]!r}); its effect cannot be identified. Remove it from "
+                    f"{float(arrays[0][0, j])!r}); its effect cannot be identified. Remove it from "
                     f"[data].{kind}s or add runs that excite it."
                 )
 

@@ -211,7 +211,10 @@ def plot_coefficient_distributions(model, ensemble_coef):
     for ax, (j, i) in zip(axes.ravel(), pairs):
         values = ensemble_coef[:, j, i]
         kept = values[values != 0]
-        ax.hist(kept, bins=20, color="0.55", edgecolor="black", linewidth=0.4)
+        # Identical values (every member agrees) get one bin: 20 bins of zero width do not exist.
+        spread = np.ptp(kept) if kept.size else 0.0
+        bins = 20 if spread > 1e-9 * max(1.0, float(np.abs(kept).max(initial=0.0))) else 1
+        ax.hist(kept, bins=bins, color="0.55", edgecolor="black", linewidth=0.4)
         ax.axvline(model.coef[j, i], color="black", linestyle="--", linewidth=1.0)
         ax.set_title(f"d({model.state_names[i]})/dt: {pretty_term(model.terms[j])}", fontsize=8)
         ax.set_xlabel("coefficient", fontsize=8)

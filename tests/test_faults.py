@@ -43,6 +43,22 @@ def test_input_that_never_moves_is_named(tmp_path):
         discover.run(small_config(tmp_path))
 
 
+def test_state_that_never_moves_is_named(tmp_path):
+    t = np.linspace(0, 10, 201)
+    pd.DataFrame({"t": t, "x": np.full(201, 3.5), "u": np.sin(t)}).to_csv(tmp_path / "a.csv", index=False)
+    with pytest.raises(DataError, match=r"state 'x' never moves in any training run \(constant 3.5\)"):
+        discover.run(small_config(tmp_path))
+
+
+def test_debug_flag_shows_the_traceback(tmp_path, capsys):
+    bad = tmp_path / "bad.toml"
+    bad.write_text('[data]\nfiles = ["none/*.csv"]\nstates = ["x"]\n')
+    assert main(["run", str(bad)]) == 3
+    assert "Traceback" not in capsys.readouterr().err
+    with pytest.raises(DataError, match="matches no file"):
+        main(["--debug", "run", str(bad)])
+
+
 def test_collinear_terms_are_named(tmp_path):
     # A binary input: u**2 equals u on every row, so the two columns are collinear.
     write_decay(tmp_path, u=(np.arange(201) // 20 % 2).astype(float))
@@ -180,9 +196,12 @@ def test_diverging_model_is_reported_in_outputs(tmp_path):
         pd.DataFrame({"t": t, "x": x0 * np.exp(t), "u": np.sin(t)}).to_csv(tmp_path / f"{name}.csv", index=False)
     config = small_config(tmp_path, held_out=["b"])
     config["simulation"] = {"divergence_factor": 2.0}
+    config["bootstrap"] = {"members": 5}  # every member diverges too
     result = discover.run(config)
     assert result.validation[0]["simulation"].diverged
+    assert result.validation[0]["members_diverged"] == 5
     assert any("diverged" in w for w in result.warnings)
+    assert any("5 of 5 ensemble members diverged" in w for w in result.warnings)
     out = discover.write_outputs(result, tmp_path / "out")
     metrics = pd.read_csv(out / "heldout_metrics.csv")
     assert metrics["diverged"].all()
