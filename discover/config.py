@@ -61,6 +61,8 @@ SCHEMA = {
         "held_out_count": Key("int", 1, minimum=0),
         "missing": Key("str", "refuse", choices=("refuse", "drop", "interpolate")),
         "max_gap": Key("int", 3, minimum=1),
+        # Read training runs in chunks of this many rows (runs larger than memory); unset: whole runs.
+        "chunk_rows": Key("int", None, minimum=100, nullable=True),
     },
     "derivatives": {
         "method": Key("str", "savitzky_golay", choices=tuple(DERIVATIVE_METHODS)),
@@ -337,6 +339,22 @@ def _check_relations(where, config):
     if sel["thresholds"] is not None and len(sel["thresholds"]) < 1:
         raise ConfigError(f"{where}: [selection].thresholds must list at least one threshold.")
     deriv = config["derivatives"]
+    if data["chunk_rows"] is not None:
+        from .stream import STREAMING_METHODS
+
+        problems = []
+        if deriv["method"] not in STREAMING_METHODS:
+            problems.append(f"[derivatives].method must be one of {', '.join(map(repr, STREAMING_METHODS))} "
+                            f"(local methods; got {deriv['method']!r})")
+        if data["missing"] != "refuse":
+            problems.append(f"[data].missing must be 'refuse' (got {data['missing']!r})")
+        if config["bootstrap"]["resample"] == "rows":
+            problems.append("[bootstrap].resample cannot be 'rows'")
+        if not data["held_out"] and data["held_out_count"] < 1:
+            problems.append("a run must be held out ([data].held_out or held_out_count >= 1), since "
+                            "validation and ranking simulate held-out runs held in memory")
+        if problems:
+            raise ConfigError(f"{where}: with [data].chunk_rows set, " + "; ".join(problems) + ".")
     try:
         default_trim(deriv["method"], {k: v for k, v in deriv.items() if k not in ("method", "trim")})
     except ConfigError as err:

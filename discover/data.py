@@ -47,6 +47,21 @@ class Run:
     u: np.ndarray
     source: str = ""
     touched: int = 0
+    #: For a run read in chunks: its full length and the exact extremes of x and u
+    #: (t, x, u then hold only evenly spaced samples, for plots).
+    n_total: int | None = None
+    extremes: tuple | None = None
+
+    @property
+    def n_samples(self):
+        return len(self.t) if self.n_total is None else self.n_total
+
+    def ranges(self):
+        """(x_min, x_max, u_min, u_max), exact even for a thinned run."""
+        if self.extremes is not None:
+            return self.extremes
+        return (self.x.min(axis=0), self.x.max(axis=0), self.u.min(axis=0, initial=np.inf),
+                self.u.max(axis=0, initial=-np.inf))
 
 
 @dataclass(frozen=True)
@@ -142,7 +157,7 @@ def check_names(names, where):
             )
 
 
-def _column(frame, name, path):
+def _column(frame, name, path, row_offset=0):
     if name not in frame.columns:
         close = difflib.get_close_matches(name, [str(c) for c in frame.columns], n=1)
         hint = f" Did you mean {close[0]!r}?" if close else ""
@@ -158,8 +173,8 @@ def _column(frame, name, path):
     if bad.any():
         row = int(np.flatnonzero(bad.to_numpy())[0])
         raise DataError(
-            f"{path}: column {name!r} has a non-numeric value {raw.iloc[row]!r} at row {row + 1} "
-            f"(line {row + 2} of a CSV). Accepted: numbers with '.' as the decimal mark."
+            f"{path}: column {name!r} has a non-numeric value {raw.iloc[row]!r} at row {row_offset + row + 1} "
+            f"(line {row_offset + row + 2} of a CSV). Accepted: numbers with '.' as the decimal mark."
         )
     return values.to_numpy(dtype=float)
 
@@ -262,27 +277,27 @@ def split_held_out(runs, held_out, held_out_count, seed, where):
     return train, test
 
 
-def load_dataset(config):
-    """Load the runs a config names; return ``(training, held_out)`` Datasets."""
+def load_dataset(config, *, lazy_training=False):
+    """Load the runs a config names; return ``(training, held_out)`` Datasets.
+
+    With ``lazy_training`` the training runs are only named (their ``source`` is set,
+    their arrays are empty): discover.stream reads them chunk by chunk.
+    """
     data, where = config["data"], config["_source"]
     states, inputs = tuple(data["states"]), tuple(data["inputs"])
     check_names((data["time"],) + states + inputs, where)
     paths = resolve_files(data["files"], config["_base"], where)
-    runs = [
-        load_run(
-            path,
-            time=data["time"],
-            states=states,
-            inputs=inputs,
-            rename=data["rename"],
-            missing=data["missing"],
-            max_gap=data["max_gap"],
-        )
-        for path in paths
-    ]
-    names = [run.name for run in runs]
+    names = [path.stem for path in paths]
     repeated = sorted({n for n in names if names.count(n) > 1})
     if repeated:
         raise DataError(f"{where}: several files share the run name(s) {repeated}; rename the files.")
-    train, test = split_held_out(runs, data["held_out"], data["held_out_count"], config["seed"], where)
-    return Dataset(states, inputs, train), Dataset(states, inputs, test)
+    empty = np.empty((0, 0))
+    placeholders = [Run(path.stem, np.empty(0), empty, empty, str(path)) for path in paths]
+    train, test = split_held_out(placeholders, data["held_out"], data["held_out_count"], config["seed"], where)
+
+    def load(run):
+        return load_run(Path(run.source), time=data["time"], states=states, inputs=inputs,
+                        rename=data["rename"], missing=data["missing"], max_gap=data["max_gap"])
+
+    train = train if lazy_training else tuple(load(run) for run in train)
+    return Dataset(states, inputs, train), Dataset(states, inputs, tuple(load(run) for run in test))

@@ -124,7 +124,9 @@ def _uniform_step(t, what, advice):
                 advice=advice,
             )
         )
-    return step_median
+    # Twelve significant digits: the step then does not depend on which samples it was
+    # taken from (time stamps carry float jitter), so chunks of a run agree with the whole run.
+    return float(f"{step_median:.12g}")
 
 
 def _time_in_samples(t):

@@ -23,7 +23,8 @@ import pandas as pd
 
 from . import bootstrap, compute, ranking, report
 from .config import load_config, threshold_grid, to_toml
-from .data import load_dataset
+from . import stream
+from .data import Dataset, load_dataset
 from .derivatives import DERIVATIVE_METHODS, default_trim, min_samples
 from .exceptions import DataError, OutputError
 from .expressions import parse_expression
@@ -110,7 +111,7 @@ class Result:
 
 def derivative_options(config):
     section = config["derivatives"]
-    return {k: v for k, v in section.items() if k not in ("method", "trim")}
+    return {k: v for k, v in section.items() if k not in ("method", "trim") and not k.endswith("_resolved")}
 
 
 def _describe_options(options):
@@ -213,6 +214,70 @@ def regression_blocks(smoothed, library, sub_length, n_folds, client=None):
     return block_grams(stacked, n_terms=k), pieces
 
 
+class MemorySource:
+    """Block Grams of training runs held in memory (the default)."""
+
+    def __init__(self, smoothed, n_folds):
+        self.smoothed, self.n_folds = smoothed, n_folds
+        correlation = int(np.median([bootstrap.correlation_length(r.x_dot[: stream.CORRELATION_ROWS])
+                                     for r in smoothed]))
+        self.lengths = [len(r.t) for r in smoothed]
+        self.correlation = correlation
+
+    def plan(self, block_length):
+        self.sub_length, self.block_length = bootstrap.block_plan(self.lengths, self.correlation, block_length)
+
+    def blocks(self, library, client=None, rows=False):
+        blocks, pieces = regression_blocks(self.smoothed, library, self.sub_length, self.n_folds, client)
+        if rows and pieces is None:
+            pieces = regression_blocks(self.smoothed, library, self.sub_length, self.n_folds)[1]
+        return blocks, pieces
+
+    def noise(self):
+        return measurement_noise(self.smoothed)
+
+
+class StreamSource:
+    """Block Grams of training runs read chunk by chunk ([data].chunk_rows); see stream.py."""
+
+    def __init__(self, config, training_paths, n_folds):
+        self.config, self.paths, self.n_folds = config, training_paths, n_folds
+        self.chunk_rows = config["data"]["chunk_rows"]
+        trim = config["derivatives"]["trim_resolved"]
+        self.sizes = [stream.count_rows(p, config, self.chunk_rows) for p in training_paths]
+        needed = max(min_samples(config["derivatives"]["method"], derivative_options(config)), 2 * trim + 3)
+        for path, n in zip(training_paths, self.sizes):
+            if n < needed:
+                raise DataError(f"{path}: {n} samples is too few for [derivatives].method = "
+                                f"{config['derivatives']['method']!r} (needs at least {needed}).")
+        self.lengths = [n - 2 * trim for n in self.sizes]
+        self.correlation = int(np.median([
+            bootstrap.correlation_length(stream.prefix_derivative(p, config, self.chunk_rows, n))
+            for p, n in zip(training_paths, self.sizes)
+        ]))
+        self.stats = {}
+
+    def plan(self, block_length):
+        self.sub_length, self.block_length = bootstrap.block_plan(self.lengths, self.correlation, block_length)
+
+    def blocks(self, library, client=None, rows=False):
+        stats = self.stats if not self.stats else None  # the first pass records the runs' statistics
+        blocks = stream.stream_grams(self.paths, self.config, library, self.sub_length, self.n_folds,
+                                     self.sizes, self.chunk_rows, stats)
+        if stats is not None:
+            self.stats = stats
+        return blocks, None
+
+    def thin_runs(self):
+        return [stream.thin_run(p, self.config, self.chunk_rows, n, self.stats[r])
+                for r, (p, n) in enumerate(zip(self.paths, self.sizes))]
+
+    def noise(self):
+        total = sum(s.n_trimmed for s in self.stats.values())
+        mean = sum(s.noise_sum for s in self.stats.values()) / total
+        return np.sqrt(np.maximum(sum(s.noise_sq for s in self.stats.values()) / total - mean**2, 0.0))
+
+
 def _run_grams(item, library, sub_length, n_folds):
     """One run's sub-block Grams (a Dask task)."""
     r, run = item
@@ -239,15 +304,15 @@ def fold_labels(blocks, n_folds, split):
 
 def check_excitation(training, where):
     """A state or input that never moves in any training run cannot be identified."""
-    for kind, names, arrays in (("state", training.state_names, [r.x for r in training.runs]),
-                                ("input", training.input_names, [r.u for r in training.runs])):
+    ranges = [run.ranges() for run in training.runs]
+    for kind, names, low, high in (("state", training.state_names, 0, 1), ("input", training.input_names, 2, 3)):
         for j, name in enumerate(names):
-            spread = max(np.ptp(a[:, j]) for a in arrays)
-            scale = max(1.0, max(np.abs(a[:, j]).max() for a in arrays))
+            spread = max(r[high][j] - r[low][j] for r in ranges)
+            scale = max(1.0, max(max(abs(r[low][j]), abs(r[high][j])) for r in ranges))
             if spread <= 1e-12 * scale:
                 raise DataError(
                     f"{where}: {kind} {name!r} never moves in any training run (constant "
-                    f"{float(arrays[0][0, j])!r}); its effect cannot be identified. Remove it from "
+                    f"{float(ranges[0][low][j])!r}); its effect cannot be identified. Remove it from "
                     f"[data].{kind}s or add runs that excite it."
                 )
 
@@ -316,15 +381,20 @@ def absolute_tolerance(config, training):
     """[simulation].atol, or 1e-6 times each state's range over the training runs."""
     if config["simulation"]["atol"] is not None:
         return config["simulation"]["atol"]
-    x = np.vstack([run.x for run in training.runs])
-    spread = x.max(axis=0) - x.min(axis=0)
+    low, high = training_extent(training)
+    spread = high - low
     return 1e-6 * np.where(spread > 0, spread, 1.0)
+
+
+def training_extent(training):
+    """Exact per-state minimum and maximum over the training runs."""
+    ranges = [run.ranges() for run in training.runs]
+    return np.min([r[0] for r in ranges], axis=0), np.max([r[1] for r in ranges], axis=0)
 
 
 def state_limits(training, factor):
     """Center and half-width of the bounded region used to call a simulation diverged."""
-    x = np.vstack([run.x for run in training.runs])
-    low, high = x.min(axis=0), x.max(axis=0)
+    low, high = training_extent(training)
     center = (low + high) / 2
     half = np.maximum((high - low) / 2, 1e-12 + 1e-9 * np.abs(center))
     return center, factor * half
@@ -352,13 +422,13 @@ def validate_held_out(config, model, held_out_smoothed, held_out, limits):
 def data_warnings(training):
     notes = []
     for run in training.runs:
+        _, _, u_min, u_max = run.ranges()
         for j, name in enumerate(training.input_names):
-            spread = np.ptp(run.u[:, j])
-            if spread <= 1e-12 * max(1.0, np.abs(run.u[:, j]).max()):
+            if u_max[j] - u_min[j] <= 1e-12 * max(1.0, abs(u_min[j]), abs(u_max[j])):
                 notes.append(f"{run.source}: input {name!r} never moves in this run; "
                              "its effect cannot be identified from it.")
-        if len(run.t) < SHORT_RUN:
-            notes.append(f"{run.source}: only {len(run.t)} samples; estimates from it are fragile.")
+        if run.n_samples < SHORT_RUN:
+            notes.append(f"{run.source}: only {run.n_samples} samples; estimates from it are fragile.")
         if run.touched:
             notes.append(f"{run.source}: {run.touched} samples were dropped or interpolated by gap handling.")
     return notes
@@ -379,18 +449,26 @@ def run(source, *, progress=False):
 
 
 def _run(config, client, progress):
-    training, held_out = load_dataset(config)
-    check_excitation(training, config["_source"])
-    library = library_from_config(config)
-    smoothed = differentiate(training, config, progress=progress)
-    correlation = int(np.median([bootstrap.correlation_length(run.x_dot) for run in smoothed]))
-    sub_length, block_length = bootstrap.block_plan(
-        [len(run.t) for run in smoothed], correlation, config["bootstrap"]["block_length"]
-    )
+    config["derivatives"]["trim_resolved"] = end_trim(config)
     n_folds = config["selection"]["cv_folds"]
-    blocks, pieces = regression_blocks(smoothed, library, sub_length, n_folds, client)
-    if pieces is None and (config["bootstrap"]["resample"] == "rows" or config["ranking"]["sr3"]):
-        pieces = regression_blocks(smoothed, library, sub_length, n_folds)[1]  # rows, on the client
+    if config["data"]["chunk_rows"]:
+        training, held_out = load_dataset(config, lazy_training=True)
+        library = library_from_config(config)
+        source = StreamSource(config, [Path(r.source) for r in training.runs], n_folds)
+        smoothed = []
+    else:
+        training, held_out = load_dataset(config)
+        check_excitation(training, config["_source"])
+        library = library_from_config(config)
+        smoothed = differentiate(training, config, progress=progress)
+        source = MemorySource(smoothed, n_folds)
+    source.plan(config["bootstrap"]["block_length"])
+    block_length = source.block_length
+    needs_rows = config["bootstrap"]["resample"] == "rows" or config["ranking"]["sr3"]
+    blocks, pieces = source.blocks(library, client, rows=needs_rows)
+    if config["data"]["chunk_rows"]:
+        training = Dataset(training.state_names, training.input_names, tuple(source.thin_runs()))
+        check_excitation(training, config["_source"])
     coef, thresholds, cv, split, warnings = select_model(config, blocks, library)
     info = {
         "threshold": {s: float(v) for s, v in zip(training.state_names, thresholds)},
@@ -410,10 +488,12 @@ def _run(config, client, progress):
     held_full = differentiate(held_out, config, trimmed=False)
     validation = validate_held_out(config, model, held_full, held_out, limits)
     if ensemble is not None and config["bootstrap"]["bands"]:
-        add_prediction_bands(config, model, ensemble, validation, limits, measurement_noise(smoothed))
+        add_prediction_bands(config, model, ensemble, validation, limits, source.noise())
     ranking_table, candidates = None, []
     if config["ranking"]["enabled"]:
-        candidates = collect_candidates(config, model, blocks, pieces, library, smoothed, cv)
+        candidates = collect_candidates(config, model, blocks, pieces, library, source, cv)
+        if pieces is None and config["ranking"]["sr3"]:
+            warnings.append("SR3 candidates need the rows in memory; with [data].chunk_rows they are left out.")
         ranking_table = rank(config, candidates, model, training, held_out,
                              held_out_smoothed(config, held_full), limits, ensemble, library)
         if not held_out.runs:
@@ -439,7 +519,7 @@ def held_out_smoothed(config, full):
     return [(trim_ends(s, trim), s.x) for s in full]
 
 
-def hypothesis_candidate(config, hypothesis, model, smoothed):
+def hypothesis_candidate(config, hypothesis, model, source):
     """A user's term set, fitted by least squares; states it leaves out keep the model's terms."""
     data = config["data"]
     per_state = []
@@ -457,28 +537,28 @@ def hypothesis_candidate(config, hypothesis, model, smoothed):
         for t in terms:
             support[keys.index(term_key(t)), i] = True
     return ranking.least_squares_candidate(f"hypothesis {hypothesis['name']!r}", "hypothesis", library,
-                                           support, smoothed)
+                                           support, source.blocks(library)[0])
 
 
-def collect_candidates(config, model, blocks, pieces, library, smoothed, cv):
+def collect_candidates(config, model, blocks, pieces, library, source, cv):
     """The model itself, the threshold path, other libraries, user hypotheses and SR3."""
     sel, rank_cfg = config["selection"], config["ranking"]
     grid = threshold_grid(sel)
     # Order matters for names: a duplicate term set keeps the first name (user's names first).
     candidates = [ranking.Candidate("model", "model", model.terms, model.coef)]
     for hypothesis in rank_cfg["hypotheses"]:
-        candidates.append(hypothesis_candidate(config, hypothesis, model, smoothed))
+        candidates.append(hypothesis_candidate(config, hypothesis, model, source))
     if rank_cfg["path"]:
         candidates += ranking.path_candidates(blocks, library, grid, ridge=sel["ridge"],
                                               max_iter=sel["max_iter"], label="path")
     for table in rank_cfg["libraries"]:
         other = library_from_config(config, table, label=f"[[ranking.libraries]] {table['name']!r}")
-        other_blocks, _ = regression_blocks(smoothed, other, max(1, blocks.counts.min()), sel["cv_folds"])
+        other_blocks, _ = source.blocks(other)
         coef, *_ = select_model(config, other_blocks, other)
         candidates.append(ranking.Candidate(f"library {table['name']!r} (cv)", "library", tuple(other.names), coef))
         candidates += ranking.path_candidates(other_blocks, other, grid, ridge=sel["ridge"],
                                               max_iter=sel["max_iter"], label=f"library {table['name']!r}")
-    if rank_cfg["sr3"]:
+    if rank_cfg["sr3"] and pieces is not None:
         candidates += ranking.sr3_candidates(pieces, library, grid)
     return ranking.merge_duplicates(candidates, model.state_names)
 
@@ -617,7 +697,7 @@ def provenance(result):
         "seed": result.config["seed"],
         "data_files": [
             {"run": r.name, "path": r.source, "sha256": file_hash(r.source), "role":
-             "held_out" if r in result.held_out.runs else "training", "samples": len(r.t)}
+             "held_out" if r in result.held_out.runs else "training", "samples": r.n_samples}
             for r in runs
         ],
         "packages": packages,
@@ -747,8 +827,10 @@ def rank_more(out_dir, hypotheses_path, *, criterion=None):
         raise ConfigError(f"{hypotheses_path}: {clash} are already in {out_dir / 'ranking.csv'}; rename them.")
     training, held_out = load_dataset(config)
     model = load_model(out_dir / "model.json")
-    smoothed = differentiate(training, config)
-    candidates = [hypothesis_candidate(config, h, model, smoothed) for h in config["ranking"]["hypotheses"]]
+    config["derivatives"]["trim_resolved"] = end_trim(config)
+    source = MemorySource(differentiate(training, config), config["selection"]["cv_folds"])
+    source.plan(config["bootstrap"]["block_length"])
+    candidates = [hypothesis_candidate(config, h, model, source) for h in config["ranking"]["hypotheses"]]
     limits = state_limits(training, config["simulation"]["divergence_factor"])
     config["simulation"]["atol_resolved"] = absolute_tolerance(config, training)
     scores = ranking.score_candidates(candidates, model.state_names, model.input_names, held_out.runs,

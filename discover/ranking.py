@@ -210,11 +210,10 @@ def path_candidates(blocks, library, thresholds, *, ridge, max_iter, label):
     return out
 
 
-def least_squares_candidate(name, source, library, support, smoothed):
-    """Fit a given term set by least squares (on scaled columns) over the training rows."""
-    from .selection import Scale, block_grams, least_squares_gram, scaled_problem
+def least_squares_candidate(name, source, library, support, blocks):
+    """Fit a given term set by least squares (on scaled columns) from the training Grams."""
+    from .selection import Scale, least_squares_gram, scaled_problem
 
-    blocks = block_grams((r, library.evaluate(run.x, run.u), run.x_dot) for r, run in enumerate(smoothed))
     total, count = blocks.total()
     scale = Scale.from_gram(total, count, len(library))
     g, b = scaled_problem(total, count, len(library), scale)

@@ -1,0 +1,57 @@
+"""Training runs read in chunks: the model does not depend on the chunk size."""
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import discover
+from discover import stream
+from discover.config import load_config
+from discover.data import load_dataset
+from discover.pipeline import differentiate, end_trim
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def ship(chunk_rows=None, **derivatives):
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # Python 3.10
+        import tomli as tomllib
+    raw = tomllib.loads((ROOT / "configs" / "ship.toml").read_text())
+    raw["data"]["files"] = [str(ROOT / "configs" / f) for f in raw["data"]["files"]]
+    raw["data"]["chunk_rows"] = chunk_rows
+    if derivatives:
+        raw["derivatives"] = derivatives
+    raw["bootstrap"] = {"members": 20, "bands": False}
+    raw["ranking"]["sr3"] = False
+    raw["output"] = {"figures": False, "report": False}
+    return raw
+
+
+@pytest.mark.parametrize("derivatives", [{}, {"method": "finite_difference", "order": 4}])
+@pytest.mark.parametrize("chunk_rows", [100, 333])
+def test_streamed_derivatives_equal_whole_run_derivatives(chunk_rows, derivatives):
+    # Reference: the same methods on the whole run in memory (scipy savgol_filter, numpy gradient).
+    config = load_config(ship(None, **derivatives))
+    config["derivatives"]["trim_resolved"] = end_trim(config)
+    training, _ = load_dataset(config)
+    for run, whole in zip(training.runs, differentiate(training, config)):
+        pieces = list(stream.trimmed_pieces(Path(run.source), config, chunk_rows, len(run.t)))
+        for streamed, expected in zip((np.concatenate([p[i] for p in pieces]) for i in range(5)),
+                                      (whole.t, whole.x, whole.x_dot, whole.u, whole.x_raw)):
+            np.testing.assert_array_equal(streamed, expected)
+
+
+def test_two_chunk_sizes_give_identical_models_and_match_the_whole_run():
+    small, large = (discover.run(ship(n)) for n in (100, 333))
+    assert small.model.to_dict() == large.model.to_dict()
+    whole = discover.run(ship(None))
+    np.testing.assert_array_equal(small.model.support, whole.model.support)
+    np.testing.assert_allclose(small.model.coef, whole.model.coef, rtol=1e-10, atol=1e-15)
+
+
+def test_chunked_mode_refuses_what_needs_whole_runs():
+    with pytest.raises(discover.ConfigError, match=r"with \[data\].chunk_rows set, \[derivatives].method must be one of"):
+        discover.run(ship(1000, method="smoothing_spline"))
