@@ -198,12 +198,12 @@ def why_chosen(table, criterion):
 
 def path_candidates(blocks, library, thresholds, *, ridge, max_iter, label):
     """Every distinct term set along the threshold path (one threshold for all states)."""
-    from .selection import fit_scaled
+    from .selection import fit_path
 
     total, count = blocks.total()
     out = []
-    for threshold in thresholds:
-        coef, _ = fit_scaled(total, count, len(library), threshold=threshold, ridge=ridge, max_iter=max_iter)
+    path = fit_path(total, count, len(library), thresholds, ridge=ridge, max_iter=max_iter)
+    for threshold, coef in zip(thresholds, path):
         if np.any(coef):
             out.append(Candidate(f"{label} threshold {threshold:.3g}", "path" if label == "path" else "library",
                                  tuple(library.names), coef))

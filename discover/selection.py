@@ -71,7 +71,7 @@ def least_squares_gram(gram, cross, support):
     return coef
 
 
-def stlsq_gram(gram, cross, *, threshold, ridge=0.0, max_iter=20, exclude=None):
+def stlsq_gram(gram, cross, *, threshold, ridge=0.0, max_iter=20, exclude=None, first=None):
     """Sequentially thresholded least squares (Brunton, Proctor & Kutz 2016) from Grams.
 
     Each iteration solves the ridge problem ``(G_AA + ridge·I) c = b_A`` on the
@@ -90,6 +90,9 @@ def stlsq_gram(gram, cross, *, threshold, ridge=0.0, max_iter=20, exclude=None):
     max_iter : int, default=20
     exclude : bool ndarray of shape (n_terms,) or None
         Terms never allowed in (for example identically zero columns).
+    first : ndarray or None
+        The ridge solution on the starting active set, if already known (it does not
+        depend on the threshold, so a threshold sweep computes it once).
 
     Returns
     -------
@@ -104,7 +107,8 @@ def stlsq_gram(gram, cross, *, threshold, ridge=0.0, max_iter=20, exclude=None):
     converged = True
     # Every target starts from the same active set: one solve with all right-hand sides.
     start = np.flatnonzero(support[:, 0])
-    first = _solve_spd(gram[np.ix_(start, start)] + ridge * np.eye(start.size), cross[start]) if start.size else None
+    if first is None and start.size:
+        first = first_solution(gram, cross, start, ridge)
     for i in range(n_targets):
         active = support[:, i]
         for iteration in range(max_iter):
@@ -122,6 +126,11 @@ def stlsq_gram(gram, cross, *, threshold, ridge=0.0, max_iter=20, exclude=None):
         else:
             converged = False
     return least_squares_gram(gram, cross, support), converged
+
+
+def first_solution(gram, cross, start, ridge):
+    """Ridge solution of every target on the starting active set ``start``."""
+    return _solve_spd(gram[np.ix_(start, start)] + ridge * np.eye(start.size), cross[start])
 
 
 def stlsq(theta, x_dot, *, threshold, ridge=0.0, max_iter=20):
@@ -243,6 +252,16 @@ def fit_scaled(augmented, count, n_terms, *, threshold, ridge, max_iter, scale=N
     return scale.to_units(scaled), converged
 
 
+def fit_path(augmented, count, n_terms, thresholds, *, ridge, max_iter, scale=None):
+    """:func:`fit_scaled` at each threshold, sharing the scaled problem and the first solve."""
+    scale = scale or Scale.from_gram(augmented, count, n_terms)
+    g, b = scaled_problem(augmented, count, n_terms, scale)
+    start = np.flatnonzero(~scale.zero)
+    first = first_solution(g, b, start, ridge) if start.size else None
+    return [scale.to_units(stlsq_gram(g, b, threshold=t, ridge=ridge, max_iter=max_iter, exclude=scale.zero,
+                                      first=first)[0]) for t in thresholds]
+
+
 def relative_error(augmented, coef, n_terms):
     """‖ẋ_i − Θξ_i‖² / ‖ẋ_i‖² for each target, from a Gram (clipped at 0 for round-off)."""
     gram, cross, target_gram = split_gram(augmented, n_terms)
@@ -340,17 +359,10 @@ def cross_validate(block_set, folds, thresholds, *, ridge, max_iter, rule="one_s
     n_terms = np.empty((len(thresholds), n_targets), dtype=int)
     for f, (held, held_count) in enumerate(zip(fold_grams, fold_counts)):
         train, train_count = total - held, total_count - held_count
-        scale = Scale.from_gram(train, train_count, k)
-        for t, threshold in enumerate(thresholds):
-            coef, _ = fit_scaled(
-                train, train_count, k, threshold=threshold, ridge=ridge, max_iter=max_iter, scale=scale
-            )
+        path = fit_path(train, train_count, k, thresholds, ridge=ridge, max_iter=max_iter)
+        for t, coef in enumerate(path):
             errors[t, f] = relative_error(held, coef, k)
-    scale = Scale.from_gram(total, total_count, k)
-    for t, threshold in enumerate(thresholds):
-        coef, _ = fit_scaled(
-            total, total_count, k, threshold=threshold, ridge=ridge, max_iter=max_iter, scale=scale
-        )
+    for t, coef in enumerate(fit_path(total, total_count, k, thresholds, ridge=ridge, max_iter=max_iter)):
         n_terms[t] = np.count_nonzero(coef, axis=0)
     error = errors.mean(axis=1)
     error_se = errors.std(axis=1, ddof=1) / np.sqrt(len(labels)) if len(labels) > 1 else np.zeros_like(error)
