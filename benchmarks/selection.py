@@ -88,14 +88,15 @@ def reference(theta, x_dot, thresholds, n_blocks, selected, weights, limit):
     rows = block_rows(len(theta), n_blocks)
     folds = np.arange(n_blocks) * N_FOLDS // n_blocks
     jobs = [(t, f) for f in range(N_FOLDS) for t in range(len(thresholds))]
-    cv_jobs = jobs[:limit] if limit else jobs
+    # Evenly spaced over thresholds and folds: fits at small thresholds keep more terms and cost more.
+    cv_jobs = [jobs[i] for i in np.linspace(0, len(jobs) - 1, limit).astype(int)] if limit else jobs
     supports, start = {}, time.perf_counter()
     for t, f in cv_jobs:
         train = np.concatenate([r for r, label in zip(rows, folds) if label != f])
         coef = reference_fit(theta[train], x_dot[train], np.full(3, thresholds[t]))
         supports[(t, f)] = coef != 0
     t_cv = (time.perf_counter() - start) * len(jobs) / len(cv_jobs)
-    members = range(min(limit, N_MEMBERS) if limit else N_MEMBERS)
+    members = np.linspace(0, N_MEMBERS - 1, min(limit, N_MEMBERS)).astype(int) if limit else range(N_MEMBERS)
     member_supports, start = [], time.perf_counter()
     for m in members:
         # The member's rows: each block repeated as often as it was drawn.
@@ -151,7 +152,8 @@ def run_case(n_rows, degree, limit, seed=0):
     ref_cv, ref_boot, ref_supports, ref_member_supports = reference(
         theta, x_dot, thresholds, n_blocks, cv.selected, weights, limit)
     same_cv = all(np.array_equal(supports[key], ref_supports[key]) for key in ref_supports)
-    same_members = all(np.array_equal(members[m] != 0, s) for m, s in enumerate(ref_member_supports))
+    timed_members = np.linspace(0, N_MEMBERS - 1, min(limit, N_MEMBERS)).astype(int) if limit else range(N_MEMBERS)
+    same_members = all(np.array_equal(members[m] != 0, s) for m, s in zip(timed_members, ref_member_supports))
     scaled = f" (timed on {limit} fits of each kind, scaled up)" if limit else ""
     print(f"\nN = {n_rows:.0e} rows, k = {k} terms, 3 targets; {N_THRESHOLDS} thresholds x {N_FOLDS} folds, "
           f"{N_MEMBERS} block-bootstrap members{scaled}")
