@@ -7,7 +7,6 @@ Both paths run in this process on the same data; the script prints times and rat
 
 import sys
 import time
-from pathlib import Path
 
 import numpy as np
 

@@ -39,7 +39,7 @@ def half_width(method, options):
     return options.get("order", 2) // 2
 
 
-def raw_chunks(path, columns, rename, chunk_rows):
+def raw_chunks(path, rename, chunk_rows):
     """DataFrames of at most ``chunk_rows`` rows, with the config's column names."""
     kind = READERS.get(path.suffix.lower())
     reverse = {column: name for name, column in rename.items()}
@@ -64,7 +64,7 @@ def checked_chunks(path, *, time, states, inputs, rename, chunk_rows):
     by their place in the whole file); missing values are refused."""
     names = list(states) + list(inputs)
     offset, last_t = 0, None
-    for frame in raw_chunks(path, names, rename, chunk_rows):
+    for frame in raw_chunks(path, rename, chunk_rows):
         t = _column(frame, time, path, offset)
         values = np.column_stack([_column(frame, n, path, offset) for n in names])
         bad = ~np.isfinite(values)

@@ -1,6 +1,5 @@
 """Faults and hostile input: clear errors, nothing half-written, nothing executed."""
 
-import os
 import signal
 import subprocess
 import sys

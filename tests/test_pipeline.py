@@ -5,18 +5,14 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from numpy.testing import assert_allclose
 
 import discover
 from discover.terms import term_key
 from systems import (
-    BETA,
     C_FARAD,
     L_HENRY,
     LORENZ_INPUT_TRUTH,
     R_OHM,
-    RHO,
-    SIGMA,
     coefficient_map,
     lorenz_runs,
     rlc_runs,
