@@ -57,6 +57,11 @@ import numpy as np
 import pandas as pd
 from scipy.integrate import solve_ivp
 
+try:  # run as a script (python data_demo/make_*.py) or imported as data_demo.make_*
+    from demo_noise import FLOAT_FORMAT, add_measurement_noise, check_rounding_below_noise
+except ImportError:
+    from data_demo.demo_noise import FLOAT_FORMAT, add_measurement_noise, check_rounding_below_noise
+
 OUTPUT_DIR = Path(__file__).resolve().parent / "bioreactor"
 
 GROWTH_COEFFICIENT = 5e-4  # a in L/(g h) per umol/m**2/s
@@ -87,8 +92,6 @@ SAMPLE_INTERVAL = 0.5  # h
 LIGHT_RAMP = 2.0  # h, dawn and dusk
 DILUTION_RAMP = 0.5  # h, pump rate change
 MAX_STEP = 0.1  # h, solver step cap, well below both ramps
-NOISE_FRACTION = 0.015  # noise std as a fraction of each column's std
-FLOAT_FORMAT = "%.6g"
 COLUMNS = ["t", "biomass", "nitrate", "light", "dilution"]
 
 HOURS_ON = 14.0  # light period per 24 h day
@@ -214,25 +217,6 @@ def check_plausible(samples, name):
     # A run at steady state would leave the growth term indistinguishable from a constant.
     if min(biomass.std() / biomass.mean(), nitrate.std() / nitrate.mean()) < 0.1:
         raise RuntimeError(f"{name}: states barely move (coefficient of variation < 0.1)")
-
-
-def add_measurement_noise(samples, rng):
-    """Add Gaussian noise of ``NOISE_FRACTION`` x column std to every column but t."""
-    noisy = samples.copy()
-    noise_std = NOISE_FRACTION * samples[:, 1:].std(axis=0)
-    noisy[:, 1:] += rng.standard_normal(samples[:, 1:].shape) * noise_std
-    return noisy, noise_std
-
-
-def check_rounding_below_noise(noisy, noise_std, name):
-    """Raise if writing with ``FLOAT_FORMAT`` would round by more than 1 % of the noise."""
-    # "%.6g" keeps 6 significant digits: rounding error <= 5e-6 * |value|.
-    rounding = 5e-6 * np.abs(noisy[:, 1:]).max(axis=0)
-    if np.any(rounding > 0.01 * noise_std):
-        raise RuntimeError(
-            f"{name}: {FLOAT_FORMAT} rounds by up to {rounding} which is not below 1 % of "
-            f"the noise std {noise_std}; use more significant digits."
-        )
 
 
 TRAINING_SEEDS = {"train_1": 201, "train_2": 202, "train_3": 203, "train_4": 206}

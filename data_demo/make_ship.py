@@ -49,6 +49,11 @@ import numpy as np
 import pandas as pd
 from scipy.signal import chirp
 
+try:  # run as a script (python data_demo/make_*.py) or imported as data_demo.make_*
+    from demo_noise import FLOAT_FORMAT, add_measurement_noise, check_rounding_below_noise
+except ImportError:
+    from data_demo.demo_noise import FLOAT_FORMAT, add_measurement_noise, check_rounding_below_noise
+
 OUTPUT_DIR = Path(__file__).resolve().parent / "ship"
 
 TIME_CONSTANT = 20.0  # T in s
@@ -74,8 +79,6 @@ MAX_RUDDER_RATE = 2.3
 DURATION = 600.0  # s, every run
 SAMPLE_INTERVAL = 0.5  # s, recorded sampling
 INTEGRATION_STEP = 0.01  # s, RK4 step; divides SAMPLE_INTERVAL exactly
-NOISE_FRACTION = 0.015  # noise std as a fraction of each column's std
-FLOAT_FORMAT = "%.6g"
 COLUMNS = ["t", "heading", "yaw_rate", "rudder"]
 
 
@@ -203,25 +206,6 @@ def sine_sweep_law(*, amplitude=15.0, start_frequency=0.005, end_frequency=0.05,
         )
 
     return command_law
-
-
-def add_measurement_noise(samples, rng):
-    """Add Gaussian noise of ``NOISE_FRACTION`` x column std to every column but t."""
-    noisy = samples.copy()
-    noise_std = NOISE_FRACTION * samples[:, 1:].std(axis=0)
-    noisy[:, 1:] += rng.standard_normal(samples[:, 1:].shape) * noise_std
-    return noisy, noise_std
-
-
-def check_rounding_below_noise(noisy, noise_std, name):
-    """Raise if writing with ``FLOAT_FORMAT`` would round by more than 1 % of the noise."""
-    # "%.6g" keeps 6 significant digits: rounding error <= 5e-6 * |value|.
-    rounding = 5e-6 * np.abs(noisy[:, 1:]).max(axis=0)
-    if np.any(rounding > 0.01 * noise_std):
-        raise RuntimeError(
-            f"{name}: {FLOAT_FORMAT} rounds by up to {rounding} which is not below 1 % of "
-            f"the noise std {noise_std}; use more significant digits."
-        )
 
 
 # name -> (seed, initial heading in deg, factory of the command law from an rng)

@@ -149,6 +149,13 @@ def method_options(method):
     }
 
 
+def derivative_options(config):
+    """The chosen derivative method's options from an effective config (method, trim and
+    values filled in during a run left out)."""
+    return {k: v for k, v in config["derivatives"].items()
+            if k not in ("method", "trim") and not k.endswith("_resolved")}
+
+
 def load_config(source):
     """Read a config from a TOML path or a dict, validate it and fill in defaults.
 
@@ -356,7 +363,7 @@ def _check_relations(where, config):
         if problems:
             raise ConfigError(f"{where}: with [data].chunk_rows set, " + "; ".join(problems) + ".")
     try:
-        default_trim(deriv["method"], {k: v for k, v in deriv.items() if k not in ("method", "trim")})
+        default_trim(deriv["method"], derivative_options(config))
     except ConfigError as err:
         raise ConfigError(f"{where}: {err}") from None
     from .expressions import parse_expression

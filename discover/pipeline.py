@@ -22,7 +22,7 @@ import numpy as np
 import pandas as pd
 
 from . import bootstrap, compute, ranking, report
-from .config import load_config, threshold_grid, to_toml
+from .config import derivative_options, load_config, threshold_grid, to_toml
 from . import stream
 from .data import Dataset, load_dataset
 from .derivatives import DERIVATIVE_METHODS, default_trim, min_samples
@@ -107,11 +107,6 @@ class Result:
                 row.update({name: values[j, i] for name, values in summary.as_stats().items()})
                 rows.append(row)
         return pd.DataFrame(rows)
-
-
-def derivative_options(config):
-    section = config["derivatives"]
-    return {k: v for k, v in section.items() if k not in ("method", "trim") and not k.endswith("_resolved")}
 
 
 def _describe_options(options):
@@ -400,11 +395,11 @@ def state_limits(training, factor):
     return center, factor * half
 
 
-def validate_held_out(config, model, held_out_smoothed, held_out, limits):
+def validate_held_out(config, model, held_full, held_out, limits):
     """Simulate each held-out run from its smoothed initial state with its recorded input."""
     sim = config["simulation"]
     results = []
-    for smooth, run in zip(held_out_smoothed, held_out.runs):
+    for smooth, run in zip(held_full, held_out.runs):
         interpolation = sim["input_interpolation"]
         if interpolation == "auto":
             interpolation = guess_interpolation(run.u)

@@ -150,7 +150,7 @@ def score_table(candidates, scores, criterion="aicc"):
             aic = aicc = bic = np.inf
         else:
             aic, aicc, bic = information_criteria(s["rss"], s["n"], k)
-        d_aic, d_aicc, d_bic = information_criteria(s["derivative_rss"], s["derivative_n"], k)
+        _, d_aicc, _ = information_criteria(s["derivative_rss"], s["derivative_n"], k)
         row = {"candidate": c.name, "source": c.source, "n_terms": k, "aic": aic, "aicc": aicc,
                "bic": bic, "simulation_error": s["simulation_error"],
                "derivative_error": s["derivative_error"], "derivative_aicc": d_aicc,
@@ -290,6 +290,7 @@ def score_candidates(candidates, state_names, input_names, runs, smoothed, *, si
     """
     from .bootstrap import simulate_ensemble
     from .expressions import parse_expression
+    from .model import Model
     from .simulate import guess_interpolation
 
     known = tuple(state_names) + tuple(input_names)
@@ -324,8 +325,6 @@ def score_candidates(candidates, state_names, input_names, runs, smoothed, *, si
     d_sigma = np.where(x_dot.std(axis=0) > 0, x_dot.std(axis=0), 1.0)
     scores = []
     for m, c in enumerate(candidates):
-        from .model import Model
-
         model = Model(tuple(state_names), tuple(input_names), c.terms, c.coef)
         predicted = np.vstack([model.rhs(s.x, s.u) for s, _ in smoothed])
         d_res = (predicted - x_dot) / d_sigma

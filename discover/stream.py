@@ -20,6 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from .config import derivative_options
 from .data import READERS, Run, _check_csv_layout, _column, _first_lines
 from .derivatives import DERIVATIVE_METHODS
 from .exceptions import DataError
@@ -114,7 +115,7 @@ def smoothed_chunks(path, config, chunk_rows, stats=None):
     """
     data, deriv = config["data"], config["derivatives"]
     method = deriv["method"]
-    options = {k: v for k, v in deriv.items() if k not in ("method", "trim") and not k.endswith("_resolved")}
+    options = derivative_options(config)
     h = half_width(method, options)
     buffer, start_row, t0, emitted = None, 0, None, 0
     chunks = checked_chunks(path, time=data["time"], states=data["states"], inputs=data["inputs"],
