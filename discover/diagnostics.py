@@ -17,6 +17,8 @@ Correlations of several runs are pooled: lagged products are summed within each 
 (never across a run boundary), each run with its own mean removed, and divided by the
 pooled sums of squares. Lags count samples; on non-uniform time a lag is a number of
 samples, not a fixed delay.
+
+Section numbers cited below other than Ljung's ch. 16 and sec. 13.2 are from memory.
 """
 
 from __future__ import annotations
@@ -63,7 +65,7 @@ def _as_runs(arrays, names, what, run_names=None):
         arrays = [arrays]
     runs = []
     for k, array in enumerate(arrays):
-        run = run_names[k] if run_names is not None else f"#{k}"
+        run = run_names[k] if run_names is not None and k < len(run_names) else f"#{k}"
         a = np.asarray(array, dtype=float)
         a = a.reshape(-1, 1) if a.ndim == 1 else a
         if a.ndim != 2 or a.shape[1] != len(names):
@@ -256,8 +258,11 @@ def ljung_box(residuals, max_lag):
     q, p : ndarray of shape (n_columns,)
         The statistic and its chi-square p-value with ``max_lag`` degrees of freedom.
     """
-    rho = _pooled_autocorrelation(residuals, max_lag)
-    lengths = np.array([len(e) for e in residuals])
+    return _ljung_box(_pooled_autocorrelation(residuals, max_lag), [len(e) for e in residuals])
+
+
+def _ljung_box(rho, lengths):
+    max_lag, lengths = len(rho) - 1, np.asarray(lengths)
     n = lengths.sum()
     products = np.array([np.sum(lengths - k) for k in range(1, max_lag + 1)])
     q = n * (n + 2) * np.sum(rho[1:] ** 2 / products[:, None], axis=0)
@@ -281,10 +286,11 @@ def residual_analysis(residuals, inputs=None, *, state_names, input_names=(), ru
     A model that has captured the dynamics leaves residuals that are white (no
     correlation with their own past) and independent of the inputs' past. The verdict
     per state names an input whose past the residual still follows (a term in it may
-    be missing) and a residual that is not white (a dynamic term may be missing). For
-    free-run residuals of a model with noise-free states the whiteness test is strict:
-    process noise alone makes them coloured; the cross-correlation test is then the
-    one to read (with the caveat the verdict states).
+    be missing) and a residual that is not white (a dynamic term may be missing).
+    Free-run residuals of the right model are white only when the data's noise is
+    measurement noise: disturbances acting on the dynamics colour them, and so does the
+    smoother behind derivative residuals. The input test is then the one to read, with
+    the caveat the verdict states.
 
     Parameters
     ----------
@@ -307,12 +313,13 @@ def residual_analysis(residuals, inputs=None, *, state_names, input_names=(), ru
     state_names, input_names = tuple(state_names), tuple(input_names)
     e_runs = _as_runs(residuals, state_names, "residuals", run_names)
     run_names = _run_names(run_names, len(e_runs))
-    u_runs = _as_runs(inputs, input_names, "inputs", run_names) if input_names else \
-        [np.empty((len(e), 0)) for e in e_runs]
+    u_runs = [np.empty((len(e), 0)) for e in e_runs] if inputs is None and not input_names else \
+        _as_runs(inputs, input_names, "inputs", run_names)
     if not e_runs:
         raise DataError("residual_analysis needs at least one run of residuals. Got none.")
     if len(u_runs) != len(e_runs):
-        raise DataError(f"residual_analysis got {len(e_runs)} runs of residuals but {len(u_runs)} of inputs.")
+        raise DataError(f"residual_analysis got {len(e_runs)} runs of residuals but {len(u_runs)} runs of inputs "
+                        f"for {input_names}. Pass one input array per run, row for row.")
     for name, e, u in zip(run_names, e_runs, u_runs):
         if len(e) != len(u):
             raise DataError(f"run {name!r} has {len(e)} residual rows but {len(u)} input rows; they must match.")
@@ -333,7 +340,7 @@ def residual_analysis(residuals, inputs=None, *, state_names, input_names=(), ru
     u_energy = sum(np.sum(u ** 2, axis=0) for u in u_runs)
     constant = e_energy == 0
     rho = _pooled_autocorrelation(e_runs, m)
-    q, q_p = ljung_box(e_runs, m)
+    q, q_p = _ljung_box(rho, lengths)
 
     cross = np.zeros((2 * m + 1, n_states, n_inputs))
     for e, u in zip(e_runs, u_runs):
@@ -423,15 +430,19 @@ def spectral_band(inputs, steps, *, power=0.95, segment=256):
     low, high : ndarray of shape (n_inputs,)
         In cycles per unit of time (Hz for seconds); NaN for an input with no variation.
     """
-    spectra = []
+    spectra, n_inputs = [], inputs[0].shape[1]
+    if n_inputs == 0:
+        return np.empty(0), np.empty(0)
     for u, step in zip(inputs, steps):
         f, density = welch(u, fs=1.0 / step, nperseg=min(segment, len(u)), detrend="constant", axis=0)
         spectra.append((f, np.cumsum(density, axis=0) * (f[1] - f[0]) * len(u)))
     grid = np.unique(np.concatenate([f for f, _ in spectra]))
     cumulative = sum(c[np.clip(np.searchsorted(f, grid, side="right") - 1, 0, None)] for f, c in spectra)
     total = cumulative[-1]
-    low, high = np.full(len(total), np.nan), np.full(len(total), np.nan)
-    for j in np.flatnonzero(total > 0):
+    # Power at rounding level (a constant input whose segment means are not exact) is no variation.
+    energy = sum(np.sum(u ** 2, axis=0) for u in inputs)
+    low, high = np.full(n_inputs, np.nan), np.full(n_inputs, np.nan)
+    for j in np.flatnonzero(total > 1e-20 * energy):
         share = cumulative[:, j] / total[j]
         low[j] = grid[np.searchsorted(share, (1 - power) / 2)]
         high[j] = grid[min(np.searchsorted(share, (1 + power) / 2), len(grid) - 1)]
@@ -635,7 +646,8 @@ def training_range(states, inputs=None, *, state_names, input_names=()):
     """TrainingRange of runs given as lists of arrays of shape (n_samples_r, n_states) and (n_samples_r, n_inputs)."""
     state_names, input_names = tuple(state_names), tuple(input_names)
     x_runs = _as_runs(states, state_names, "states")
-    u_runs = _as_runs(inputs, input_names, "inputs") if input_names else [np.empty((len(x), 0)) for x in x_runs]
+    u_runs = [np.empty((len(x), 0)) for x in x_runs] if inputs is None and not input_names else \
+        _as_runs(inputs, input_names, "inputs")
     if not x_runs or len(u_runs) != len(x_runs):
         raise DataError(f"training_range needs the same number of state and input runs (at least one). "
                         f"Got {len(x_runs)} and {len(u_runs)}.")
@@ -704,7 +716,8 @@ def check_extrapolation(training, states, inputs=None, *, run_name, margin=0.05)
     n_states = training.kinds.count("state")
     state_names, input_names = training.names[:n_states], training.names[n_states:]
     (x,) = _as_runs([states], state_names, "states", [run_name])
-    (u,) = _as_runs([inputs], input_names, "inputs", [run_name]) if input_names else (np.empty((len(x), 0)),)
+    (u,) = [np.empty((len(x), 0))] if inputs is None and not input_names else \
+        _as_runs([inputs], input_names, "inputs", [run_name])
     if len(u) != len(x):
         raise DataError(f"run {run_name!r} has {len(x)} state rows but {len(u)} input rows; they must match.")
     if not (isinstance(margin, (float, int)) and 0 <= margin < 1):

@@ -2,7 +2,8 @@
 
 Ljung, System Identification: Theory for the User, 2nd ed. 1999: ch. 16 (residual
 analysis), sec. 13.2 (persistent excitation). Söderström & Stoica, System
-Identification, 1989, sec. 5.4 (the same definition of persistent excitation).
+Identification, 1989, sec. 5.4 (the same definition of persistent excitation). Section
+numbers other than Ljung's ch. 16 and sec. 13.2 are from memory.
 """
 
 import numpy as np
@@ -59,9 +60,11 @@ def test_pooled_autocorrelation_never_crosses_runs():
     reference = acf(joined, nlags=max_lag, fft=False, missing="conservative")
     result = residual_analysis(runs, state_names=("x",), max_lag=max_lag)
     np.testing.assert_allclose(result.autocorrelation[:, 0], reference[1:], rtol=0, atol=1e-12)
+    # AR(1) with coefficient 0.6 is far from white (its lag-1 correlation is 0.6; Box & Jenkins).
+    assert result.verdicts[0].startswith("residuals of x are not white (Ljung–Box p < 1e-12 at 12 lags)")
     # The offsets between runs create no correlation: white runs at different levels pass.
     white = [rng.standard_normal((400, 1)) + level for level in (-50.0, 50.0)]
-    assert residual_analysis(white, state_names=("x",)).white[0]
+    assert residual_analysis(white, state_names=("x",)).verdicts == ("residuals of x pass: white",)
 
 
 def test_cross_correlation_and_bound_equal_statsmodels_ccf():
@@ -184,7 +187,7 @@ def test_excitation_order_of_textbook_signals():
 def test_excitation_order_of_prbs_is_its_period(nbits):
     # A maximum-length PRBS (scipy.signal.max_len_seq) of period P = 2^nbits - 1 is persistently
     # exciting of order P (Ljung 1999, sec. 13.3; Söderström & Stoica 1989, sec. 5.4), with levels
-    # 0/1 or -1/+1 alike.
+    # 0/1 or -1/+1 alike (section numbers from memory).
     sequence = max_len_seq(nbits)[0].astype(float)
     period = len(sequence)
     u = np.tile(sequence, 4000 // period + 2)[:, None]
@@ -211,6 +214,7 @@ def test_excitation_order_pools_runs_without_crossing_them():
 
 
 def test_shortfall_against_library_term_counts():
+    # One sinusoid has order 2 and white noise every order (Ljung 1999, sec. 13.2).
     t = np.arange(0.0, 100.0, 0.1)
     u = np.column_stack([np.sin(2.0 * t), np.random.default_rng(8).standard_normal(len(t))])
     excitation = input_excitation([t], [u], input_names=("rudder", "noise"))
@@ -277,6 +281,7 @@ def test_extrapolation_flags_a_run_outside_the_training_range_only():
 
 
 def test_extrapolation_of_a_channel_constant_in_training():
+    # Arithmetic: one of four samples differs from the constant training value.
     training = training_range([np.zeros((10, 1))], [np.ones((10, 1))], state_names=("x",), input_names=("u",))
     check = check_extrapolation(training, np.zeros((4, 1)), np.array([[1.0], [1.0], [1.5], [1.0]]), run_name="r")
     assert check.leaving == ("u",) and np.isinf(check.excess[1]) and check.share[1] == 0.25
@@ -287,6 +292,8 @@ def test_extrapolation_of_a_channel_constant_in_training():
 
 
 def test_lag_ranges_and_default_lag():
+    # Our own message format (lag ranges with an en dash, common practice in print); the default
+    # lag min(25, N/4) follows Box & Jenkins (1976; from memory) and the usual 25-lag plot.
     assert lag_ranges([3, 4, 5, 6, 7, 8, 9]) == "3–9"
     assert lag_ranges([0, 2, 3, 7]) == "0, 2–3, 7"
     assert lag_ranges([]) == ""
@@ -294,6 +301,7 @@ def test_lag_ranges_and_default_lag():
 
 
 def test_bad_input_names_the_run_and_column():
+    # Project rule (RULES.md): bad input gets a DiscoverError naming run, column and what is accepted.
     e = np.zeros((50, 2))
     with pytest.raises(DataError, match=r"residuals of run 'r1' must have shape \(n_samples, 3\)"):
         residual_analysis([e], state_names=("a", "b", "c"), run_names=("r1",))
