@@ -469,13 +469,16 @@ def excitation_order(inputs, *, max_order=30, rtol=1e-3):
     Notes: a finite record's step transition adds eigenvalues of order 1/N, so a step
     counts as order 1 once N is large against 1/rtol (a few thousand samples at the
     default). Lags are samples: an input sampled much faster than it varies has nearly
-    collinear lags and a low order at this tolerance.
+    collinear lags and a low order at this tolerance; pass it decimated (``u[::k]``) to
+    ask at a coarser step. The order counts lags of u: a library of instantaneous terms
+    f(x, u) needs varied levels of u more than many lags, so read a shortfall as a hint.
 
     Parameters
     ----------
     inputs : list of ndarray of shape (n_samples_r, n_inputs)
     max_order : int, default=30
-        Orders are checked up to this; an order equal to it means "at least".
+        Orders are checked up to this (and up to half the longest run); an order equal to
+        the cap means "at least".
     rtol : float, default=1e-3
         Directions excited less than this share of the strongest count as not excited.
 
@@ -529,6 +532,8 @@ class InputExcitation:
     order : ndarray of shape (n_inputs,), int
         Order of persistent excitation (``excitation_order``).
     max_order : int
+        The largest order checked (``max_order``, or half the longest run if less): an
+        order equal to it means "at least".
     resampled : tuple of str
         Runs put on a uniform grid first (``on_uniform_grid``).
     """
@@ -586,9 +591,10 @@ def input_excitation(times, inputs, *, input_names, run_names=None, power=0.95, 
     steps = [step for step, _, _ in grids]
     uniform = [u for _, u, _ in grids]
     low, high = spectral_band(uniform, steps, power=power, segment=segment)
+    checked = min(max_order, max(len(u) for u in uniform) // 2)  # excitation_order's own cap
     return InputExcitation(
         input_names=input_names, band_low=low, band_high=high, power=float(power), nyquist=0.5 / max(steps),
-        order=excitation_order(uniform, max_order=max_order, rtol=rtol), max_order=max_order,
+        order=excitation_order(uniform, max_order=max_order, rtol=rtol), max_order=checked,
         resampled=tuple(name for name, (_, _, resampled) in zip(run_names, grids) if resampled))
 
 
