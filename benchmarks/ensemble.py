@@ -17,8 +17,8 @@ from discover.data import load_dataset
 from discover.selection import fit_scaled
 from discover.expressions import parse_expression
 from discover.model import Model
-from discover.pipeline import (absolute_tolerance, differentiate, library_from_config, regression_blocks, run_ensemble,
-                               select_model, state_limits)
+from discover.pipeline import (differentiate, library_from_config, regression_blocks, run_ensemble,
+                               select_model)
 
 
 def timed(fn, repeat=3):
@@ -58,14 +58,13 @@ def main(path):
 
     ens, model = result.ensemble, result.model
     run = result.held_out.runs[0] if result.held_out.runs else result.training.runs[0]
-    limits = state_limits(result.training, config["simulation"]["divergence_factor"])
+    settings = result.simulation
     used = np.flatnonzero(np.any(ens.coef != 0, axis=(0, 2)))
     known = model.state_names + model.input_names
     expressions = [parse_expression(model.terms[j], known) for j in used]
     coef = ens.coef[:, used, :]
-    sim = config["simulation"]
-    options = dict(interpolation="linear", method=sim["method"], rtol=sim["rtol"],
-                   atol=absolute_tolerance(config, result.training), limits=limits)
+    options = dict(interpolation="linear", method=settings.method, rtol=settings.rtol,
+                   atol=settings.atol, limits=settings.limits)
 
     def loop():
         out = []

@@ -294,8 +294,11 @@ def ensemble_rhs(expressions, state_names, input_names, coef):
 
 
 def simulate_ensemble(expressions, state_names, input_names, coef, t, x0, u, *, interpolation,
-                      method, rtol, atol, limits):
-    """Simulate every member in one solver call (restarted only when a member escapes).
+                      method, rtol, atol, limits, time_limit=None):
+    """Simulate the members in batches of one solver call each (restarted only when a member escapes).
+
+    A batch holds at most :data:`discover.resources.MAX_BATCH_STATES` states, so the
+    solver's dense Jacobian stays small however many members there are.
 
     Returns
     -------
@@ -303,13 +306,19 @@ def simulate_ensemble(expressions, state_names, input_names, coef, t, x0, u, *, 
         NaN from the time a member left the bounded region.
     diverged : bool ndarray of shape (n_members,)
     """
-    from .simulate import simulate_batch
+    from .resources import ensemble_batches
+    from .simulate import DEFAULT_TIME_LIMIT, simulate_batch
 
     n_members = coef.shape[0]
-    rhs = ensemble_rhs(expressions, state_names, input_names, coef)
-    x0s = np.tile(np.asarray(x0, dtype=float), (n_members, 1))
-    x, stopped_at, _ = simulate_batch(rhs, t, x0s, u, interpolation=interpolation, method=method,
-                                      rtol=rtol, atol=atol, limits=limits)
+    x0 = np.asarray(x0, dtype=float)
+    x = np.empty((n_members, len(t), len(state_names)))
+    stopped_at = np.empty(n_members)
+    for batch in ensemble_batches(n_members, len(state_names)):
+        rows = np.arange(batch.start, batch.stop)
+        rhs = ensemble_rhs(expressions, state_names, input_names, coef[rows])
+        x[rows], stopped_at[rows], _ = simulate_batch(
+            rhs, t, np.tile(x0, (len(rows), 1)), u, interpolation=interpolation, method=method, rtol=rtol,
+            atol=atol, limits=limits, time_limit=time_limit or DEFAULT_TIME_LIMIT)
     return x, np.isfinite(stopped_at)
 
 

@@ -7,6 +7,7 @@ import signal
 import sys
 import threading
 
+from . import __version__
 from .exceptions import DiscoverError
 
 EXAMPLES = """\
@@ -32,6 +33,7 @@ def build_parser():
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     parser.add_argument("--debug", action="store_true", help="show tracebacks of input errors")
+    parser.add_argument("--version", action="version", version=f"discover {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
     run = sub.add_parser("run", help="run the pipeline from a TOML config",
                          description="Run the pipeline from a TOML config and write the output folder.")
@@ -46,6 +48,9 @@ def build_parser():
     rank.add_argument("hypotheses", help="TOML file with [[ranking.hypotheses]] entries")
     rank.add_argument("--save", help="where to write the combined table "
                                      "(default: OUT_DIR/ranking_updated.csv)")
+    rank.add_argument("--allow-changed-data", action="store_true",
+                      help="score even if a data file differs from the SHA-256 in provenance.json "
+                           "(the combined table then mixes scores on different data)")
     from .export import FORMATS
 
     exp = sub.add_parser("export", help="export a saved model: Python module, LaTeX, A/B matrices",
@@ -63,62 +68,72 @@ def build_parser():
                                      "with that run's recorded input, and print the fit.")
     sim.add_argument("model", help="path to model.json")
     sim.add_argument("data", help="CSV or Parquet run with the model's state and input columns")
-    sim.add_argument("--time", default="t", help="name of the time column (default: t)")
-    sim.add_argument("--interpolation", default="linear", choices=("linear", "zoh"))
+    sim.add_argument("--time", default=None,
+                     help="name of the time column (default: the one the model was fitted with, else t)")
+    sim.add_argument("--interpolation", default=None, choices=("auto", "linear", "zoh"),
+                     help="input between samples: linear, zoh (zero-order hold) or auto (zoh when the "
+                          "input mostly holds its values); default: the rule of the run that fitted the model")
     return parser
 
 
-def _run(args):
-    from .pipeline import run, write_outputs
+def _run(args, session):
+    from .config import load_config
+    from .data import resolve_files
+    from .outputs import OutputClaim, default_output_dir, input_files, write_files
+    from .pipeline import run
     from .report import summary
 
-    result = run(args.config, progress=True)
-    target = write_outputs(result, args.out, force=args.force)
+    config = load_config(args.config)
+    output = config["output"]
+    target = args.out if args.out else default_output_dir(output["dir"], config["_source"], config["_base"])
+    inputs = input_files(config) + resolve_files(config["data"]["files"], config["_base"], config["_source"])
+    # Claimed before the computation: a target that cannot be written fails in one line, at once.
+    with OutputClaim(target, force=args.force, inputs=inputs) as claim:
+        session["claim"] = claim
+        result = run(config, progress=True)
+        result.output_dir = claim.publish(lambda folder: write_files(result, folder))
     print(summary(result))
-    print(f"Output written to {target}")
+    print(f"Output written to {result.output_dir}")
 
 
-def _rank(args):
+def _rank(args, session):
     import os
     import tempfile
     from pathlib import Path
 
+    from .exceptions import OutputError
     from .pipeline import rank_more
     from .report import ranking_lines
 
-    table = rank_more(args.out_dir, args.hypotheses)
     target = Path(args.save) if args.save else Path(args.out_dir) / "ranking_updated.csv"
-    handle, temporary = tempfile.mkstemp(prefix=".ranking-", dir=target.parent)
-    os.close(handle)
-    table.to_csv(temporary, index=False)
-    os.replace(temporary, target)
-    print("\n".join(ranking_lines(table, "aicc", top=12)))
+    if not target.parent.is_dir():
+        raise OutputError(f"{target}: the folder {target.parent} does not exist; create it or choose "
+                          "another --save path.")
+    if target.is_dir():
+        raise OutputError(f"{target}: is a folder; give a file name for --save, e.g. {target / 'ranking.csv'}.")
+    table, criterion = rank_more(args.out_dir, args.hypotheses, allow_changed_data=args.allow_changed_data)
+    try:
+        handle, temporary = tempfile.mkstemp(prefix=".ranking-", dir=target.parent)
+        os.close(handle)
+        table.to_csv(temporary, index=False)
+        os.replace(temporary, target)
+    except OSError as err:
+        raise OutputError(f"{target}: cannot write the table ({err.strerror}).") from None
+    print("\n".join(ranking_lines(table, criterion, top=12)))
     print(f"Combined ranking written to {target}")
 
 
-def _export(args):
+def _export(args, session):
     from .export import export_main
 
     export_main(args)
 
 
-def _simulate(args):
-    from pathlib import Path
+def _simulate(args, session):
+    from .replay import replay_file
 
-    from .data import load_run
-    from .model import load_model
-    from .simulate import fit_metrics
-
-    model = load_model(args.model)
-    run = load_run(Path(args.data), time=args.time, states=model.state_names, inputs=model.input_names,
-                   rename={}, missing="refuse", max_gap=1)
-    sim = model.simulate(run.t, run.x[0], run.u, interpolation=args.interpolation)
-    if sim.diverged:
-        print(f"{run.name}: diverged ({sim.message})")
-        return
-    metrics = fit_metrics(run.x, sim.x)
-    for state, fit, rmse in zip(model.state_names, metrics["fit_percent"], metrics["rmse"]):
-        print(f"{run.name}: {state} fit {fit:.1f} %, RMSE {rmse:.4g}")
+    replay = replay_file(args.model, args.data, time=args.time, interpolation=args.interpolation)
+    print(replay.describe())
 
 
 def _terminate(signum, frame):
@@ -127,22 +142,32 @@ def _terminate(signum, frame):
 
 
 def main(argv=None):
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGTERM, _terminate)  # first, so that even a slow start is interruptible
     parser = build_parser()
     args = parser.parse_args(argv)
-    if threading.current_thread() is threading.main_thread():
-        signal.signal(signal.SIGTERM, _terminate)
+    session = {}
     try:
-        {"run": _run, "rank": _rank, "export": _export, "simulate": _simulate}[args.command](args)
+        {"run": _run, "rank": _rank, "export": _export, "simulate": _simulate}[args.command](args, session)
     except DiscoverError as err:
         if args.debug:
             raise
         print(f"discover: error: {err}", file=sys.stderr)
         return err.exit_code
     except KeyboardInterrupt:
-        print("discover: interrupted; no new output folder was written and an existing one "
-              "is as it was.", file=sys.stderr)
+        print(f"discover: interrupted; {_where_things_are(session)}", file=sys.stderr)
         return 130
     return 0
+
+
+def _where_things_are(session):
+    """What an interruption left, told as it is."""
+    claim = session.get("claim")
+    if claim is None or claim.state == "nothing written":
+        return "no new output folder was written and an existing one is as it was."
+    if claim.state == "new result in place":
+        return f"the new result had already been written to {claim.path}."
+    return f"{claim.state}; the next run to {claim.path} puts it back."
 
 
 if __name__ == "__main__":

@@ -14,7 +14,9 @@ from __future__ import annotations
 import difflib
 import inspect
 import math
+import os
 import sys
+import unicodedata
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -26,7 +28,7 @@ else:  # pragma: no cover
 from .derivatives import DERIVATIVE_METHODS, default_trim
 from .exceptions import ConfigError
 
-SIMULATION_METHODS = ("LSODA", "RK45", "DOP853", "Radau", "BDF", "RK23")
+from .simulate import SOLVERS as SIMULATION_METHODS
 
 
 @dataclass(frozen=True)
@@ -130,6 +132,10 @@ SCHEMA = {
         "workers": Key("int", 2, minimum=1, maximum=1024),  # LocalCluster only
         "processes": Key("bool", True),  # LocalCluster only: worker processes, not threads
         "timeout": Key("float", 30.0, minimum=1.0),  # seconds to reach a remote scheduler
+        # Refuse a run whose estimated memory exceeds this many GiB (None: half of this machine's memory).
+        "memory_limit": Key("float", None, minimum=0.01, nullable=True),
+        # Wall-clock limit of one simulation (one run, or one batch of ensemble members), seconds.
+        "simulation_time_limit": Key("float", 60.0, minimum=0.1),
     },
     "output": {
         "dir": Key("str", None, nullable=True),
@@ -171,14 +177,20 @@ def load_config(source):
         path = Path(source)
         where, base = str(path), path.resolve().parent
         try:
-            with open(path, "rb") as handle:
-                raw = tomllib.load(handle)
+            raw = tomllib.loads(path.read_bytes().decode("utf-8"))
         except FileNotFoundError:
             raise ConfigError(f"{path}: config file not found.") from None
+        except IsADirectoryError:
+            raise ConfigError(f"{path}: is a folder; give the path of a TOML config file.") from None
         except OSError as err:
             raise ConfigError(f"{path}: cannot read the config file ({err.strerror}).") from None
+        except UnicodeDecodeError as err:
+            raise ConfigError(f"{path}: not a UTF-8 text file (byte {err.start + 1}); save the config "
+                              "as UTF-8.") from None
         except tomllib.TOMLDecodeError as err:
             raise ConfigError(f"{path}: not valid TOML: {err}.") from None
+        except RecursionError:
+            raise ConfigError(f"{path}: not valid TOML: nested too deeply.") from None
     config = validate(raw, where)
     config["_source"], config["_base"] = where, str(base)
     return config
@@ -214,8 +226,18 @@ def validate(raw, where="config"):
             if value is REQUIRED:
                 raise ConfigError(f"{where}: [{name}].{key} is required.")
             effective[name][key] = _check_value(where, name, key, spec, value)
+    _normalize_names(effective["data"])
     _check_relations(where, effective)
     return effective
+
+
+def _normalize_names(data):
+    """Column names in NFKC form, as :func:`discover.data.normalize_name` reads the files."""
+    norm = lambda name: unicodedata.normalize("NFKC", name.strip())  # noqa: E731
+    data["time"] = norm(data["time"])
+    data["states"] = [norm(n) for n in data["states"]]
+    data["inputs"] = [norm(n) for n in data["inputs"]]
+    data["rename"] = {norm(k): v for k, v in data["rename"].items()}
 
 
 def _derivative_keys(where, table):
@@ -394,8 +416,18 @@ def threshold_grid(selection):
     )
 
 
-def to_toml(config):
-    """Write the effective config as TOML (the subset of TOML this schema uses)."""
+def to_toml(config, *, absolute_paths=False):
+    """Write the effective config as TOML (the subset of TOML this schema uses).
+
+    With ``absolute_paths`` the data files and the output folder are written as
+    absolute paths, so that the file runs again as it is from wherever it lies.
+    """
+    if absolute_paths:
+        base = Path(config["_base"])
+        config = {**config, "data": dict(config["data"]), "output": dict(config["output"])}
+        config["data"]["files"] = [str(Path(os.path.normpath(base / f))) for f in config["data"]["files"]]
+        if config["output"]["dir"] is not None:
+            config["output"]["dir"] = str(Path(os.path.normpath(base / config["output"]["dir"])))
     lines = []
     for key, value in config.items():
         if not key.startswith("_") and not isinstance(value, dict) and value is not None:
@@ -414,14 +446,17 @@ def to_toml(config):
     return "\n".join(lines) + "\n"
 
 
+_TOML_ESCAPES = {"\\": "\\\\", '"': '\\"', "\n": "\\n", "\t": "\\t", "\r": "\\r", "\b": "\\b", "\f": "\\f"}
+
+
 def _toml_value(value):
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, (int, float)):
         return repr(value)
     if isinstance(value, str):
-        escaped = value.replace("\\", "\\\\").replace('"', '\\"')
-        return f'"{escaped}"'
+        return '"' + "".join(_TOML_ESCAPES.get(c) or (f"\\u{ord(c):04x}" if ord(c) < 32 or ord(c) == 127 else c)
+                             for c in value) + '"'
     if isinstance(value, list):
         return "[" + ", ".join(_toml_value(v) for v in value) + "]"
     if isinstance(value, dict):

@@ -9,9 +9,12 @@ from __future__ import annotations
 import csv
 import difflib
 import glob
+import hashlib
+import io
 import keyword
 import os
 import re
+import unicodedata
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -39,6 +42,10 @@ class Run:
         The file it came from.
     touched : int
         Samples dropped or interpolated by gap handling.
+    sha256 : str
+        SHA-256 of the file's bytes, taken from the same bytes that were parsed.
+    time_note : str
+        How the time column was read when it was not plain numbers (date-times).
     """
 
     name: str
@@ -47,6 +54,8 @@ class Run:
     u: np.ndarray
     source: str = ""
     touched: int = 0
+    sha256: str = ""
+    time_note: str = ""
     #: For a run read in chunks: its full length and the exact extremes of x and u
     #: (t, x, u then hold only evenly spaced samples, for plots).
     n_total: int | None = None
@@ -89,16 +98,53 @@ def resolve_files(patterns, base, where):
     return [Path(f) for f in files]
 
 
-def _first_lines(path, n=3):
+def normalize_name(name):
+    """Column and config names in Unicode NFKC form, the form Python's parser gives identifiers."""
+    return unicodedata.normalize("NFKC", str(name).strip())
+
+
+def read_bytes(path):
+    """The file's bytes and their SHA-256, read once, so the hash is of what is parsed."""
     try:
-        with open(path, encoding="utf-8", newline="") as handle:
-            return [line.rstrip("\r\n") for _, line in zip(range(n), handle)]
+        content = Path(path).read_bytes()
     except FileNotFoundError:
         raise DataError(f"{path}: file not found.") from None
-    except UnicodeDecodeError:
-        raise DataError(f"{path}: not a UTF-8 text file; export the run as CSV (UTF-8) or Parquet.") from None
+    except IsADirectoryError:
+        raise DataError(f"{path}: is a folder, not a data file.") from None
     except OSError as err:
         raise DataError(f"{path}: cannot read the file ({err.strerror}).") from None
+    return content, hashlib.sha256(content).hexdigest()
+
+
+def file_hash(path):
+    """SHA-256 of a file, read in pieces."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for chunk in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def head_lines(path, n=3):
+    """The first lines of a text file (for the layout checks of a file read in chunks)."""
+    try:
+        with open(path, "rb") as handle:
+            content = handle.read(1 << 16)
+    except FileNotFoundError:
+        raise DataError(f"{path}: file not found.") from None
+    except OSError as err:
+        raise DataError(f"{path}: cannot read the file ({err.strerror}).") from None
+    return _first_lines(path, content, n)
+
+
+def _first_lines(path, content, n=3):
+    try:
+        text = content[: 1 << 16].decode("utf-8")
+    except UnicodeDecodeError as err:
+        if err.start < (1 << 16) - 4:  # not just a character cut at the end of the sample
+            raise DataError(f"{path}: not a UTF-8 text file; export the run as CSV (UTF-8) or Parquet.") from None
+        text = content[: err.start].decode("utf-8")
+    return [line.rstrip("\r") for line in text.split("\n")[:n]]
 
 
 def _check_csv_layout(path, lines):
@@ -125,20 +171,22 @@ def _check_csv_layout(path, lines):
 
 
 def read_table(path):
-    """Read one file into a DataFrame of raw cells; refuse the common format problems."""
+    """Read one file into a DataFrame of raw cells and the SHA-256 of its bytes.
+
+    Refuses the common format problems.
+    """
     kind = READERS.get(path.suffix.lower())
     if kind is None:
         raise DataError(f"{path}: unsupported file type {path.suffix!r}. Accepted: .csv, .txt, .parquet, .pq.")
+    content, digest = read_bytes(path)
     if kind == "parquet":
         try:
-            return pd.read_parquet(path)
-        except FileNotFoundError:
-            raise DataError(f"{path}: file not found.") from None
+            return pd.read_parquet(io.BytesIO(content)), digest
         except Exception as err:  # pyarrow raises its own types for corrupt files
             raise DataError(f"{path}: not a readable Parquet file ({type(err).__name__}: {err}).") from None
-    _check_csv_layout(path, _first_lines(path))
+    _check_csv_layout(path, _first_lines(path, content))
     try:
-        return pd.read_csv(path, skipinitialspace=True)
+        return pd.read_csv(io.BytesIO(content), skipinitialspace=True, encoding="utf-8"), digest
     except pd.errors.ParserError as err:
         raise DataError(f"{path}: cannot parse the CSV ({err}). Check that every line has as many "
                         "fields as the header and that decimals use '.'.") from None
@@ -218,18 +266,37 @@ def handle_missing(path, columns, names, t, *, missing, max_gap):
     return filled, t, int(bad.any(axis=1).sum())
 
 
+def time_column(frame, name, path):
+    """The time column in seconds; date-times become seconds from the first sample.
+
+    Returns the values and a note for the summary ("" for plain numbers).
+    """
+    if name in frame.columns and not isinstance(frame[name], pd.DataFrame):
+        raw = frame[name]
+        if pd.api.types.is_datetime64_any_dtype(raw) or isinstance(raw.dtype, pd.DatetimeTZDtype):
+            if raw.isna().any():
+                row = int(np.flatnonzero(raw.isna().to_numpy())[0])
+                raise DataError(f"{path}: time column {name!r} has a missing date-time at row {row + 1}.")
+            seconds = (raw - raw.iloc[0]).dt.total_seconds().to_numpy(dtype=float)
+            return seconds, (f"time column {name!r} holds date-times; read as seconds from the first "
+                             f"sample ({raw.iloc[0]})")
+        if pd.api.types.is_timedelta64_dtype(raw):
+            return raw.dt.total_seconds().to_numpy(dtype=float), f"time column {name!r} holds durations; read as seconds"
+    return _column(frame, name, path), ""
+
+
 def load_run(path, *, time, states, inputs, rename, missing, max_gap):
     """Read and check one run."""
-    frame = read_table(path)
-    frame.columns = [str(c).strip() for c in frame.columns]
+    frame, digest = read_table(path)
+    frame.columns = [normalize_name(c) for c in frame.columns]
     duplicated = sorted({c for c in frame.columns if list(frame.columns).count(c) > 1})
     if duplicated:  # Parquet; CSV headers are checked before pandas renames duplicates
         raise DataError(f"{path}: duplicate column names {duplicated}. Each column needs its own name.")
     if len(frame) == 0:
         raise DataError(f"{path}: the file has a header but no data rows.")
-    reverse = {column: name for name, column in rename.items()}
+    reverse = {normalize_name(column): name for name, column in rename.items()}
     frame = frame.rename(columns=reverse)
-    t = _column(frame, time, path)
+    t, time_note = time_column(frame, time, path)
     names = list(states) + list(inputs)
     columns = np.column_stack([_column(frame, name, path) for name in names]) if names else np.empty((len(t), 0))
     if not np.isfinite(t).all():
@@ -252,6 +319,8 @@ def load_run(path, *, time, states, inputs, rename, missing, max_gap):
         u=np.ascontiguousarray(columns[:, n_states:]),
         source=str(path),
         touched=touched,
+        sha256=digest,
+        time_note=time_note,
     )
 
 

@@ -27,6 +27,11 @@ FUNCTIONS = {
     "abs": np.abs,
 }
 
+#: Longest expression text accepted, and deepest nesting of operations in it: far above
+#: any term a person writes, low enough that the parser and evaluator never recurse out.
+MAX_LENGTH = 2000
+MAX_DEPTH = 60
+
 _BINARY = {ast.Add: "+", ast.Sub: "-", ast.Mult: "*", ast.Div: "/", ast.Pow: "**"}
 _UNARY = {ast.USub: "-", ast.UAdd: "+"}
 
@@ -79,8 +84,13 @@ def parse_expression(text, allowed_names, *, where="expression"):
     if not isinstance(text, str) or not text.strip():
         raise ExpressionError(f"{where}: expected a non-empty expression string. Got {text!r}.")
     stripped = text.strip()
+    if len(stripped) > MAX_LENGTH:
+        raise ExpressionError(f"{where}: the expression is {len(stripped)} characters long; at most "
+                              f"{MAX_LENGTH} are accepted. Split it into several terms.")
     try:
         tree = ast.parse(stripped, mode="eval").body
+    except (RecursionError, MemoryError):
+        raise ExpressionError(f"{where}: the expression is nested too deeply to parse.") from None
     except SyntaxError as err:
         column = err.offset or 1
         raise ExpressionError(
@@ -88,7 +98,7 @@ def parse_expression(text, allowed_names, *, where="expression"):
         ) from None
     allowed = set(allowed_names)
     names = []
-    _check(tree, stripped, allowed, names, where)
+    _check(tree, stripped, allowed, names, where, 0)
     return Expression(text=stripped, names=tuple(names), _tree=tree)
 
 
@@ -97,11 +107,20 @@ def _fail(node, text, where, why):
     raise ExpressionError(f"{where}: {text!r} at column {column}: {why}")
 
 
-def _check(node, text, allowed, names, where):
+def _check(node, text, allowed, names, where, depth):
     """Walk the tree; refuse every node type not on the whitelist."""
+    if depth > MAX_DEPTH:
+        _fail(node, text, where, f"nested more than {MAX_DEPTH} operations deep; write it as several terms.")
+    depth += 1
     if isinstance(node, ast.Constant):
         if isinstance(node.value, bool) or not isinstance(node.value, (int, float)):
             _fail(node, text, where, f"only numbers are allowed as constants, got {node.value!r}.")
+        try:
+            finite = np.isfinite(float(node.value))
+        except OverflowError:
+            finite = False
+        if not finite:
+            _fail(node, text, where, "a number beyond the floating-point range (about 1.8e308).")
     elif isinstance(node, ast.Name):
         if node.id in FUNCTIONS:
             _fail(node, text, where, f"{node.id!r} is a function; call it as {node.id}(...).")
@@ -117,18 +136,18 @@ def _check(node, text, allowed, names, where):
     elif isinstance(node, ast.BinOp):
         if type(node.op) not in _BINARY:
             _fail(node, text, where, "only + - * / ** are allowed between terms.")
-        _check(node.left, text, allowed, names, where)
-        _check(node.right, text, allowed, names, where)
+        _check(node.left, text, allowed, names, where, depth)
+        _check(node.right, text, allowed, names, where, depth)
     elif isinstance(node, ast.UnaryOp):
         if type(node.op) not in _UNARY:
             _fail(node, text, where, "only unary + and - are allowed.")
-        _check(node.operand, text, allowed, names, where)
+        _check(node.operand, text, allowed, names, where, depth)
     elif isinstance(node, ast.Call):
         if not isinstance(node.func, ast.Name) or node.func.id not in FUNCTIONS:
             _fail(node, text, where, f"functions must be one of {', '.join(FUNCTIONS)}.")
         if node.keywords or len(node.args) != 1:
             _fail(node, text, where, f"{node.func.id}() takes exactly one argument.")
-        _check(node.args[0], text, allowed, names, where)
+        _check(node.args[0], text, allowed, names, where, depth)
     else:
         _fail(
             node,

@@ -22,7 +22,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import pipeline
+from .provenance import provenance
 from .config import to_toml
 from .simulate import guess_interpolation
 from .report import (
@@ -491,7 +491,7 @@ def _derivative_check(result):
 
 
 def _inputs(result):
-    record = pipeline.provenance(result)
+    record = provenance(result)
     files = [[f["run"], f["role"].replace("_", " "), str(f["samples"]), f["path"], f["sha256"]]
              for f in record["data_files"]]
     packages = [[name, version or "not installed"] for name, version in record["packages"].items()]

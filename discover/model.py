@@ -74,7 +74,7 @@ class Model:
         return dx[0] if single else dx
 
     def simulate(self, t, x0, u=None, *, interpolation="linear", method="LSODA", rtol=1e-6,
-                 atol=1e-9, limits=None):
+                 atol=1e-9, limits=None, time_limit=_simulate.DEFAULT_TIME_LIMIT):
         """Simulate from x0 over times t with input u (samples at t, or a callable of t).
 
         Returns a :class:`discover.simulate.Simulation`; a diverging run is reported
@@ -85,7 +85,7 @@ class Model:
             u = np.empty((len(t), 0))
         return _simulate.simulate(
             self.rhs, t, x0, u, interpolation=interpolation, method=method, rtol=rtol, atol=atol,
-            limits=limits, state_names=list(self.state_names),
+            limits=limits, state_names=list(self.state_names), time_limit=time_limit,
         )
 
     def equations(self):
@@ -144,22 +144,30 @@ def from_dict(document, where="model"):
         state = equation.get("state") if isinstance(equation, dict) else None
         if state not in states:
             _fail(where, f"equations[{k}].state must be one of {states}. Got {state!r}.")
-        for m, term in enumerate(equation.get("terms", [])):
+        listed = equation.get("terms", [])
+        if not isinstance(listed, list):
+            _fail(where, f"equations[{k}].terms must be a list of {{\"expr\": ..., \"coefficient\": ...}} "
+                         f"entries. Got {type(listed).__name__}.")
+        for m, term in enumerate(listed):
+            if not isinstance(term, dict):
+                _fail(where, f"equations[{k}].terms[{m}] must be an object with 'expr' and 'coefficient'. "
+                             f"Got {type(term).__name__}.")
             expr, coefficient = term.get("expr"), term.get("coefficient")
-            if not isinstance(expr, str) or not isinstance(coefficient, (int, float)):
-                _fail(where, f"equations[{k}].terms[{m}] needs a string 'expr' and a number 'coefficient'.")
+            if not isinstance(expr, str) or not _is_real(coefficient):
+                _fail(where, f"equations[{k}].terms[{m}] needs a string 'expr' and a finite number "
+                             f"'coefficient' (not a boolean, NaN or infinity). Got {coefficient!r}.")
             if expr not in terms:
                 terms.append(expr)
             entries[(expr, state)] = term
     coef = np.zeros((len(terms), len(states)))
     stat_names = sorted({key for term in entries.values() for key, value in term.items()
-                         if key not in ("expr", "coefficient") and isinstance(value, (int, float))})
+                         if key not in ("expr", "coefficient") and _is_real(value)})
     stats = {name: np.full((len(terms), len(states)), np.nan) for name in stat_names}
     for (expr, state), term in entries.items():
         j, i = terms.index(expr), states.index(state)
         coef[j, i] = float(term["coefficient"])
         for name in stat_names:
-            if isinstance(term.get(name), (int, float)):
+            if _is_real(term.get(name)):
                 stats[name][j, i] = float(term[name])
     info = {k: v for k, v in document.items() if k not in ("format", "states", "inputs", "equations")}
     try:
@@ -168,13 +176,33 @@ def from_dict(document, where="model"):
         _fail(where, str(err))
 
 
+def _is_real(value):
+    """A finite int or float, not a boolean."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        return False
+    try:
+        return bool(np.isfinite(float(value)))
+    except OverflowError:  # an integer literal beyond the float range
+        return False
+
+
+def _refuse_constant(token):
+    raise ValueError(f"{token} is not a finite number")
+
+
 def load_model(path):
     """Read a ``model.json`` back into a :class:`Model`."""
     path = Path(path)
     try:
-        document = json.loads(path.read_text())
+        document = json.loads(path.read_text(encoding="utf-8"), parse_constant=_refuse_constant)
     except FileNotFoundError:
         _fail(path, "model file not found.")
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as err:
+    except IsADirectoryError:
+        _fail(path, "is a folder; give the path of model.json.")
+    except RecursionError:
+        _fail(path, "cannot read the model file (JSON nested too deeply).")
+    except (OSError, UnicodeDecodeError, ValueError) as err:
         _fail(path, f"cannot read the model file ({err}).")
+    except OverflowError as err:
+        _fail(path, f"cannot read the model file (a number is too large: {err}).")
     return from_dict(document, where=str(path))

@@ -8,25 +8,23 @@ leaves half a result.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
-import platform
-import shutil
-import tempfile
+import sys
 from dataclasses import dataclass, field
-from importlib import metadata
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from . import bootstrap, compute, ranking, report
+from . import bootstrap, compute, ranking, report, resources
 from .config import derivative_options, load_config, threshold_grid, to_toml
 from . import stream
 from .data import Dataset, load_dataset
 from .derivatives import DERIVATIVE_METHODS, default_trim, min_samples
-from .exceptions import DataError, OutputError
+from .data import file_hash
+from .exceptions import ConfigError, DataError, OutputError
+from .outputs import write_outputs  # noqa: F401  (re-exported: discover.write_outputs)
 from .expressions import parse_expression
 from .model import Model
 from .selection import (
@@ -40,7 +38,7 @@ from .selection import (
     cross_validate,
     fit_scaled,
 )
-from .simulate import fit_metrics, guess_interpolation
+from .simulate import SimulationSettings, fit_metrics, run_model, simulation_settings
 from .terms import build_library, term_key
 
 SHORT_RUN = 50  # fewer usable samples than this in a run earns a warning
@@ -76,6 +74,7 @@ class Result:
     ranking: object = None
     candidates: list = field(default_factory=list)
     output_dir: Path | None = None
+    simulation: SimulationSettings | None = None
 
     def validation_table(self):
         rows = []
@@ -303,8 +302,9 @@ def check_excitation(training, where):
     for kind, names, low, high in (("state", training.state_names, 0, 1), ("input", training.input_names, 2, 3)):
         for j, name in enumerate(names):
             spread = max(r[high][j] - r[low][j] for r in ranges)
-            scale = max(1.0, max(max(abs(r[low][j]), abs(r[high][j])) for r in ranges))
-            if spread <= 1e-12 * scale:
+            # Relative to the channel's own magnitude: results must not depend on units.
+            scale = max(max(abs(r[low][j]), abs(r[high][j])) for r in ranges)
+            if spread <= 1e-12 * scale or spread == 0:
                 raise DataError(
                     f"{where}: {kind} {name!r} never moves in any training run (constant "
                     f"{float(ranges[0][low][j])!r}); its effect cannot be identified. Remove it from "
@@ -372,56 +372,50 @@ def select_model(config, blocks, library):
     return coef, thresholds, cv, split, warnings
 
 
-def absolute_tolerance(config, training):
-    """[simulation].atol, or 1e-6 times each state's range over the training runs."""
-    if config["simulation"]["atol"] is not None:
-        return config["simulation"]["atol"]
-    low, high = training_extent(training)
-    spread = high - low
-    return 1e-6 * np.where(spread > 0, spread, 1.0)
-
-
 def training_extent(training):
     """Exact per-state minimum and maximum over the training runs."""
     ranges = [run.ranges() for run in training.runs]
     return np.min([r[0] for r in ranges], axis=0), np.max([r[1] for r in ranges], axis=0)
 
 
-def state_limits(training, factor):
-    """Center and half-width of the bounded region used to call a simulation diverged."""
-    low, high = training_extent(training)
-    center = (low + high) / 2
-    half = np.maximum((high - low) / 2, 1e-12 + 1e-9 * np.abs(center))
-    return center, factor * half
-
-
-def validate_held_out(config, model, held_full, held_out, limits):
-    """Simulate each held-out run from its smoothed initial state with its recorded input."""
+def resolve_simulation(config, training):
+    """The one :class:`~discover.simulate.SimulationSettings` of this run."""
     sim = config["simulation"]
+    low, high = training_extent(training)
+    return simulation_settings(low, high, method=sim["method"], rtol=sim["rtol"], atol=sim["atol"],
+                               divergence_factor=sim["divergence_factor"],
+                               interpolation=sim["input_interpolation"],
+                               time_limit=config["compute"]["simulation_time_limit"])
+
+
+def validate_held_out(model, held_full, held_out, settings):
+    """Simulate each held-out run from its smoothed initial state with its recorded input."""
     results = []
     for smooth, run in zip(held_full, held_out.runs):
-        interpolation = sim["input_interpolation"]
-        if interpolation == "auto":
-            interpolation = guess_interpolation(run.u)
-        simulation = model.simulate(
-            run.t, smooth.x[0], run.u, interpolation=interpolation, method=sim["method"],
-            rtol=sim["rtol"], atol=sim["atol_resolved"], limits=limits,
-        )
+        simulation = run_model(model, run.t, smooth.x[0], run.u, settings)
         metrics = fit_metrics(run.x, simulation.x)
         results.append({"run": run.name, "simulation": simulation, "metrics": metrics,
-                        "interpolation": interpolation, "t": run.t, "x": run.x, "u": run.u,
+                        "interpolation": settings.interpolation_for(run.u), "t": run.t, "x": run.x, "u": run.u,
                         "x0": smooth.x[0]})
     return results
 
 
-def data_warnings(training):
+def frozen(low, high):
+    """True where a channel does not move, relative to its own magnitude (not its units)."""
+    return (high - low) <= 1e-12 * np.maximum(np.abs(low), np.abs(high))
+
+
+def data_warnings(training, held_out=None):
     notes = []
-    for run in training.runs:
-        _, _, u_min, u_max = run.ranges()
-        for j, name in enumerate(training.input_names):
-            if u_max[j] - u_min[j] <= 1e-12 * max(1.0, abs(u_min[j]), abs(u_max[j])):
-                notes.append(f"{run.source}: input {name!r} never moves in this run; "
-                             "its effect cannot be identified from it.")
+    for run in list(training.runs) + list(held_out.runs if held_out is not None else []):
+        x_min, x_max, u_min, u_max = run.ranges()
+        for kind, names, low, high in (("state", training.state_names, x_min, x_max),
+                                       ("input", training.input_names, u_min, u_max)):
+            for j in np.flatnonzero(frozen(low, high)):
+                notes.append(f"{run.source}: {kind} {names[j]!r} never moves in this run (constant "
+                             f"{float(low[j])!r}); its effect cannot be identified from it.")
+        if run.time_note:
+            notes.append(f"{run.source}: {run.time_note}.")
         if run.n_samples < SHORT_RUN:
             notes.append(f"{run.source}: only {run.n_samples} samples; estimates from it are fragile.")
         if run.touched:
@@ -438,9 +432,18 @@ def run(source, *, progress=False):
         The model, the CV curve, the held-out validation and the warnings. Nothing is
         written; see :func:`write_outputs` (the CLI does both).
     """
-    config = load_config(source)
-    with compute.cluster(config) as client:
+    config = source if _is_loaded(source) else load_config(source)
+    from threadpoolctl import threadpool_limits
+
+    # One BLAS thread: sums in a fixed order, so the same config and data give the same
+    # model bit for bit on any machine and thread count.
+    with threadpool_limits(limits=1), compute.cluster(config) as client:
         return _run(config, client, progress)
+
+
+def _is_loaded(source):
+    """A config that load_config already returned (it carries where it came from)."""
+    return isinstance(source, dict) and "_source" in source and "_base" in source
 
 
 def _run(config, client, progress):
@@ -459,7 +462,13 @@ def _run(config, client, progress):
         source = MemorySource(smoothed, n_folds)
     source.plan(config["bootstrap"]["block_length"])
     block_length = source.block_length
+    check_library_size(library, sum(source.lengths), config["_source"])
     needs_rows = config["bootstrap"]["resample"] == "rows" or config["ranking"]["sr3"]
+    resources.check_memory(resources.estimate(
+        library_terms=len(library), n_states=len(training.state_names), run_lengths=source.lengths,
+        sub_length=source.sub_length, n_folds=n_folds, members=config["bootstrap"]["members"],
+        keep_rows=needs_rows and not config["data"]["chunk_rows"], chunk_rows=config["data"]["chunk_rows"],
+    ), config["compute"]["memory_limit"], config["_source"])
     blocks, pieces = source.blocks(library, client, rows=needs_rows)
     if config["data"]["chunk_rows"]:
         training = Dataset(training.state_names, training.input_names, tuple(source.thin_runs()))
@@ -477,23 +486,24 @@ def _run(config, client, progress):
     if config["bootstrap"]["members"] > 0:
         ensemble = run_ensemble(config, blocks, pieces, library, thresholds, block_length, progress, client)
         model = ensemble_model(config, single, ensemble, blocks)
-    limits = state_limits(training, config["simulation"]["divergence_factor"])
-    config["simulation"]["atol_resolved"] = absolute_tolerance(config, training)
+    settings = resolve_simulation(config, training)
+    model = Model(model.state_names, model.input_names, model.terms, model.coef, model.term_stats,
+                  {**model.info, **replay_info(config, settings)})
     # Simulations start from the smoothed state, so held-out runs are kept untrimmed here.
     held_full = differentiate(held_out, config, trimmed=False)
-    validation = validate_held_out(config, model, held_full, held_out, limits)
+    validation = validate_held_out(model, held_full, held_out, settings)
     if ensemble is not None and config["bootstrap"]["bands"]:
-        add_prediction_bands(config, model, ensemble, validation, limits, source.noise())
+        add_prediction_bands(config, model, ensemble, validation, settings, source.noise())
     ranking_table, candidates = None, []
     if config["ranking"]["enabled"]:
         candidates = collect_candidates(config, model, blocks, pieces, library, source, cv)
         if pieces is None and config["ranking"]["sr3"]:
             warnings.append("SR3 candidates need the rows in memory; with [data].chunk_rows they are left out.")
         ranking_table = rank(config, candidates, model, training, held_out,
-                             held_out_smoothed(config, held_full), limits, ensemble, library)
+                             held_out_smoothed(config, held_full), settings, ensemble, library)
         if not held_out.runs:
             warnings.append("The ranking scored candidates on the training runs (no run is held out).")
-    warnings = data_warnings(training) + warnings
+    warnings = data_warnings(training, held_out) + warnings
     for item in validation:
         if item["simulation"].diverged:
             warnings.append(f"Held-out run {item['run']!r} diverged: {item['simulation'].message}.")
@@ -505,7 +515,17 @@ def _run(config, client, progress):
     if not held_out.runs:
         warnings.append("No run is held out: the model is not validated on unseen data.")
     return Result(config, model, library.names, cv, training, held_out, smoothed, validation, warnings,
-                  single_model=single, ensemble=ensemble, ranking=ranking_table, candidates=candidates)
+                  single_model=single, ensemble=ensemble, ranking=ranking_table, candidates=candidates,
+                  simulation=settings)
+
+
+def replay_info(config, settings):
+    """What ``discover simulate`` needs to repeat this run's held-out simulations exactly."""
+    return {
+        "time": config["data"]["time"],
+        "derivatives": {"method": config["derivatives"]["method"], **derivative_options(config)},
+        "simulation": settings.to_dict(),
+    }
 
 
 def held_out_smoothed(config, full):
@@ -558,7 +578,7 @@ def collect_candidates(config, model, blocks, pieces, library, source, cv):
     return ranking.merge_duplicates(candidates, model.state_names)
 
 
-def rank(config, candidates, model, training, held_out, held_smoothed, limits, ensemble, library):
+def rank(config, candidates, model, training, held_out, held_smoothed, settings, ensemble, library):
     """Score candidates on the held-out runs (training runs if none) and order them."""
     runs, smoothed = held_out.runs, held_smoothed
     if not runs:  # scored on the training runs instead; run() warns about it
@@ -566,7 +586,7 @@ def rank(config, candidates, model, training, held_out, held_smoothed, limits, e
     inclusion = ensemble.summary.inclusion_probability if ensemble is not None else None
     scores = ranking.score_candidates(
         candidates, model.state_names, model.input_names, runs, smoothed,
-        simulation=config["simulation"], limits=limits, inclusion=inclusion, library_terms=library.names,
+        settings=settings, inclusion=inclusion, library_terms=library.names,
         horizon=config["ranking"]["horizon"],
     )
     return ranking.score_table(candidates, scores, config["ranking"]["criterion"])
@@ -644,9 +664,9 @@ def measurement_noise(smoothed):
     return residual.std(axis=0)
 
 
-def add_prediction_bands(config, model, ensemble, validation, limits, noise_std):
-    """Simulate all members on each held-out run (one solver call per run) and add bands."""
-    sim, level = config["simulation"], config["bootstrap"]["level"]
+def add_prediction_bands(config, model, ensemble, validation, settings, noise_std):
+    """Simulate all members on each held-out run (one solver call per batch) and add bands."""
+    level = config["bootstrap"]["level"]
     # A stream of its own, so that the band does not shift the members' draws.
     rng = np.random.default_rng([config["seed"], 1])
     used = np.flatnonzero(np.any(ensemble.coef != 0, axis=(0, 2)))
@@ -658,8 +678,8 @@ def add_prediction_bands(config, model, ensemble, validation, limits, noise_std)
     for item in validation:
         x, diverged = bootstrap.simulate_ensemble(
             expressions, model.state_names, model.input_names, coef, item["t"],
-            item["x0"], item["u"], interpolation=item["interpolation"], method=sim["method"],
-            rtol=sim["rtol"], atol=sim["atol_resolved"], limits=limits,
+            item["x0"], item["u"], interpolation=item["interpolation"], method=settings.method,
+            rtol=settings.rtol, atol=settings.atol, limits=settings.limits, time_limit=settings.time_limit,
         )
         median, low, high = bootstrap.prediction_band(x, diverged, level, noise_std=noise_std, rng=rng)
         item["band"] = (median, low, high)
@@ -667,144 +687,33 @@ def add_prediction_bands(config, model, ensemble, validation, limits, noise_std)
         item["members_diverged"] = int(diverged.sum())
 
 
-# --------------------------------------------------------------------------- outputs
-
-
-def file_hash(path):
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for chunk in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(chunk)
-    return digest.hexdigest()
-
-
-def provenance(result):
-    packages = {}
-    for name in ("discover", "numpy", "scipy", "pandas", "scikit-learn", "matplotlib", "derivative"):
-        try:
-            packages[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            packages[name] = None
-    runs = list(result.training.runs) + list(result.held_out.runs)
-    return {
-        "config_source": result.config["_source"],
-        "config_base": result.config["_base"],
-        "seed": result.config["seed"],
-        "data_files": [
-            {"run": r.name, "path": r.source, "sha256": file_hash(r.source), "role":
-             "held_out" if r in result.held_out.runs else "training", "samples": r.n_samples}
-            for r in runs
-        ],
-        "packages": packages,
-        "python": platform.python_version(),
-    }
-
-
-def coefficient_table(model):
-    rows = []
-    for state, kept in model.equations():
-        for expr, coefficient, stats in kept:
-            rows.append({"state": state, "term": expr, "coefficient": coefficient, **stats})
-    return pd.DataFrame(rows, columns=["state", "term", "coefficient"] + sorted(model.term_stats))
-
-
-def candidates_document(result):
-    """Every ranked candidate as a model document, so ``discover rank`` can rescore cheaply."""
-    models = []
-    for c in result.candidates:
-        m = Model(result.model.state_names, result.model.input_names, c.terms, c.coef)
-        models.append({"name": c.name, "source": c.source, "also": list(c.also), **m.to_dict()})
-    return {"format": "discover-candidates/1", "candidates": models}
-
-
-def default_output_dir(config):
-    if config["output"]["dir"] is not None:
-        return Path(os.path.normpath(Path(config["_base"]) / config["output"]["dir"]))
-    stem = Path(config["_source"]).stem if config["_source"] != "config" else "run"
-    return Path("out") / stem
-
-
-def write_outputs(result, out_dir=None, *, force=False):
-    """Write the output folder atomically: into a temporary sibling, then rename.
-
-    An existing folder is replaced only with ``force``; it is moved aside first and
-    removed only once the new folder is in place.
-    """
-    target = Path(out_dir) if out_dir is not None else default_output_dir(result.config)
-    if target.exists() and not force:
-        raise OutputError(
-            f"{target}: the output folder exists already. Pass --force to replace it, "
-            "or choose another folder with --out."
-        )
-    target.parent.mkdir(parents=True, exist_ok=True)
-    staging = Path(tempfile.mkdtemp(prefix=f".{target.name}.incomplete-", dir=target.parent))
-    try:
-        _write_all(result, staging)
-        if target.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
-            os.replace(target, old / "previous")
-            os.replace(staging, target)
-            shutil.rmtree(old)
-        else:
-            os.replace(staging, target)
-    except BaseException:
-        shutil.rmtree(staging, ignore_errors=True)
-        raise
-    result.output_dir = target
-    return target
-
-
-def _write_all(result, folder):
-    model = result.model
-    model.save(folder / "model.json")
-    coefficient_table(model).to_csv(folder / "coefficients.csv", index=False)
-    result.validation_table().to_csv(folder / "heldout_metrics.csv", index=False)
-    if result.cv is not None:
-        report.cv_table(result.cv, model.state_names).to_csv(folder / "cv_curve.csv", index=False)
-    if result.ensemble is not None:
-        result.inclusion_table().to_csv(folder / "inclusion_probabilities.csv", index=False)
-    if result.ranking is not None:
-        result.ranking.to_csv(folder / "ranking.csv", index=False)
-        (folder / "candidates.json").write_text(json.dumps(candidates_document(result), indent=1) + "\n")
-    for item in result.validation:
-        if "band" in item:
-            report.band_table(item, model.state_names).to_csv(
-                folder / f"band_{report.safe_name(item['run'])}.csv", index=False)
-    (folder / "config_effective.toml").write_text(to_toml(result.config))
-    (folder / "provenance.json").write_text(json.dumps(provenance(result), indent=2) + "\n")
-    (folder / "warnings.txt").write_text("".join(f"{w}\n" for w in result.warnings))
-    (folder / "summary.txt").write_text(report.summary(result) + "\n")
-    if result.config["output"]["figures"]:
-        report.write_figures(result, folder)
-    if result.config["output"]["report"]:
-        from . import html_report
-
-        html_report.write_report(result, folder)
-
-
-def rank_more(out_dir, hypotheses_path, *, criterion=None):
+def rank_more(out_dir, hypotheses_path, *, criterion=None, allow_changed_data=False):
     """Score extra hypotheses against an earlier run's ranking without refitting the rest.
 
     Reads ``config_effective.toml``, ``provenance.json``, ``model.json`` and
-    ``ranking.csv`` from ``out_dir``; fits and scores only the new hypotheses (on the
-    same training and held-out runs) and returns the combined, re-ordered table.
+    ``ranking.csv`` from ``out_dir``; checks that the data files are the ones that run
+    read (SHA-256), fits and scores only the new hypotheses on the same training and
+    held-out runs, and returns the combined, re-ordered table and its criterion.
     """
-    import tomllib
-
-    from .config import validate
-    from .exceptions import ConfigError
+    from .config import tomllib, validate
     from .model import load_model
 
     out_dir, hypotheses_path = Path(out_dir), Path(hypotheses_path)
     needed = ["config_effective.toml", "provenance.json", "model.json", "ranking.csv"]
-    missing = [name for name in needed if not (out_dir / name).exists()]
+    missing = [name for name in needed if not (out_dir / name).is_file()]
     if missing:
         raise OutputError(f"{out_dir}: not a discover output folder with a ranking (missing {', '.join(missing)}).")
-    raw = tomllib.loads((out_dir / "config_effective.toml").read_text())
     try:
-        extra = tomllib.loads(hypotheses_path.read_text())
+        raw = tomllib.loads((out_dir / "config_effective.toml").read_text(encoding="utf-8"))
+        record = json.loads((out_dir / "provenance.json").read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError) as err:
+        raise OutputError(f"{out_dir}: cannot read the earlier run's config or provenance ({err}).") from None
+    try:
+        extra = tomllib.loads(hypotheses_path.read_bytes().decode("utf-8"))
     except FileNotFoundError:
         raise ConfigError(f"{hypotheses_path}: file not found.") from None
+    except (OSError, UnicodeDecodeError) as err:
+        raise ConfigError(f"{hypotheses_path}: cannot read it as UTF-8 text ({err}).") from None
     except tomllib.TOMLDecodeError as err:
         raise ConfigError(f"{hypotheses_path}: not valid TOML: {err}.") from None
     unknown = sorted(set(extra) - {"ranking"}) or sorted(set(extra.get("ranking", {})) - {"hypotheses"})
@@ -814,25 +723,40 @@ def rank_more(out_dir, hypotheses_path, *, criterion=None):
     raw.setdefault("ranking", {})["hypotheses"] = extra["ranking"]["hypotheses"]
     config = validate(raw, str(hypotheses_path))
     config["_source"] = str(hypotheses_path)
-    config["_base"] = json.loads((out_dir / "provenance.json").read_text())["config_base"]
+    config["_base"] = record.get("config_base", str(out_dir))
     criterion = criterion or config["ranking"]["criterion"]
     old = pd.read_csv(out_dir / "ranking.csv", keep_default_na=False, na_values=[""])
     clash = sorted(set(f"hypothesis {h['name']!r}" for h in config["ranking"]["hypotheses"]) & set(old["candidate"]))
     if clash:
         raise ConfigError(f"{hypotheses_path}: {clash} are already in {out_dir / 'ranking.csv'}; rename them.")
     training, held_out = load_dataset(config)
+    if not allow_changed_data:
+        check_same_data(record, list(training.runs) + list(held_out.runs), out_dir)
     model = load_model(out_dir / "model.json")
     config["derivatives"]["trim_resolved"] = end_trim(config)
     source = MemorySource(differentiate(training, config), config["selection"]["cv_folds"])
     source.plan(config["bootstrap"]["block_length"])
     candidates = [hypothesis_candidate(config, h, model, source) for h in config["ranking"]["hypotheses"]]
-    limits = state_limits(training, config["simulation"]["divergence_factor"])
-    config["simulation"]["atol_resolved"] = absolute_tolerance(config, training)
-    scores = ranking.score_candidates(candidates, model.state_names, model.input_names, held_out.runs,
-                                      held_out_smoothed(config, differentiate(held_out, config, trimmed=False)),
-                                      simulation=config["simulation"],
-                                      limits=limits, horizon=config["ranking"]["horizon"])
+    scored = held_out if held_out.runs else training  # as the run did when nothing was held out
+    scores = ranking.score_candidates(candidates, model.state_names, model.input_names, scored.runs,
+                                      held_out_smoothed(config, differentiate(scored, config, trimmed=False)),
+                                      settings=resolve_simulation(config, training),
+                                      horizon=config["ranking"]["horizon"])
     new = ranking.score_table(candidates, scores, criterion)
     combined = pd.concat([old, new], ignore_index=True)
     combined["also"] = combined["also"].fillna("")
-    return ranking.order_table(combined, criterion)
+    return ranking.order_table(combined, criterion), criterion
+
+
+def check_same_data(record, runs, out_dir):
+    """Refuse data files whose bytes differ from those the earlier run read."""
+    recorded = {str(Path(f["path"]).resolve()): f.get("sha256") for f in record.get("data_files", [])}
+    for run in runs:
+        path = str(Path(run.source).resolve())
+        if path not in recorded:
+            raise DataError(f"{run.source}: was not among the data files of {out_dir} (see its provenance.json); "
+                            "the new scores would not be comparable. Pass --allow-changed-data to score anyway.")
+        if recorded[path] != run.sha256:
+            raise DataError(f"{run.source}: changed since {out_dir} was written (SHA-256 differs from its "
+                            "provenance.json), so new scores would not be comparable with the table. Run "
+                            "'discover run' again, or pass --allow-changed-data to score anyway.")

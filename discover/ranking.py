@@ -272,7 +272,7 @@ def simulation_segments(t, horizon):
     return [rows for rows in np.split(np.arange(len(t)), np.flatnonzero(np.diff(labels)) + 1) if len(rows) > 1]
 
 
-def score_candidates(candidates, state_names, input_names, runs, smoothed, *, simulation, limits,
+def score_candidates(candidates, state_names, input_names, runs, smoothed, *, settings,
                      inclusion=None, library_terms=None, horizon=None):
     """Score every candidate on the same runs.
 
@@ -283,15 +283,14 @@ def score_candidates(candidates, state_names, input_names, runs, smoothed, *, si
     smoothed : sequence of (pipeline.Smoothed, ndarray)
         For each run: its derivative-stage result (trimmed), for one-step derivative
         errors, and its smoothed states on every sample, where simulations start.
-    simulation : dict
-        The ``[simulation]`` config section (method, tolerances, interpolation).
+    settings : discover.simulate.SimulationSettings
+        How to simulate (method, tolerances, interpolation, bounded region, time limit).
     horizon : float or None
         Simulate segments of this length, each from the smoothed measured state.
     """
     from .bootstrap import simulate_ensemble
     from .expressions import parse_expression
     from .model import Model
-    from .simulate import guess_interpolation
 
     known = tuple(state_names) + tuple(input_names)
     # All candidates in one batch: the union of their terms, one coefficient slice each.
@@ -310,14 +309,12 @@ def score_candidates(candidates, state_names, input_names, runs, smoothed, *, si
     squared = np.zeros((len(candidates), len(state_names)))
     diverged = np.zeros(len(candidates), dtype=bool)
     for run, (_, x_start) in zip(runs, smoothed):
-        interpolation = simulation["input_interpolation"]
-        if interpolation == "auto":
-            interpolation = guess_interpolation(run.u)
+        interpolation = settings.interpolation_for(run.u)
         for rows in simulation_segments(run.t, horizon):
             x, div = simulate_ensemble(expressions, state_names, input_names, coef, run.t[rows],
                                        x_start[rows[0]], run.u[rows], interpolation=interpolation,
-                                       method=simulation["method"], rtol=simulation["rtol"],
-                                       atol=simulation["atol_resolved"], limits=limits)
+                                       method=settings.method, rtol=settings.rtol, atol=settings.atol,
+                                       limits=settings.limits, time_limit=settings.time_limit)
             diverged |= div
             squared += np.nansum(((x - run.x[rows][None]) / sigma) ** 2, axis=1)
     n_sim = sum(len(rows) for run in runs for rows in simulation_segments(run.t, horizon))

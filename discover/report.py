@@ -143,7 +143,28 @@ def safe_name(text):
     return re.sub(r"[^A-Za-z0-9_.-]", "_", text)[:80] or "run"
 
 
+def file_stems(names):
+    """File-name-safe stems, one per name and all different ('run 1' and 'run_1' both
+    become 'run_1' on their own; the second then gets a suffix)."""
+    stems, taken = [], set()
+    for name in names:
+        stem, n = safe_name(name), 2
+        while stem.lower() in taken:  # case-insensitive file systems too
+            stem, n = f"{safe_name(name)}-{n}", n + 1
+        taken.add(stem.lower())
+        stems.append(stem)
+    return stems
+
+
 def write_figures(result, folder):
+    import matplotlib
+
+    # Names from the data may hold "$", which matplotlib would otherwise read as TeX.
+    with matplotlib.rc_context({"text.parse_math": False}):
+        _write_figures(result, folder)
+
+
+def _write_figures(result, folder):
     plt = _pyplot()
     figures = []
     if result.cv is not None:
@@ -157,9 +178,9 @@ def write_figures(result, folder):
         figures.append(("ranking_pareto.png", plot_pareto(result.ranking)))
         if result.validation:
             figures.append(("ranking_top.png", plot_top_candidates(result, result.config["ranking"]["top"])))
-    for item in result.validation:
+    for item, stem in zip(result.validation, file_stems([item["run"] for item in result.validation])):
         band = item["band"][1:] if "band" in item else None
-        figures.append((f"heldout_{safe_name(item['run'])}.png",
+        figures.append((f"heldout_{stem}.png",
                         plot_held_out(item, result.model.state_names, band=band)))
     for name, fig in figures:
         fig.savefig(folder / name, dpi=110, metadata={"Software": None})
@@ -264,6 +285,7 @@ def plot_pareto(table):
 def plot_top_candidates(result, top):
     """Held-out trajectories of the best-ranked candidates (first held-out run)."""
     from .model import Model
+    from .simulate import run_model
 
     plt = _pyplot()
     item = result.validation[0]
@@ -274,12 +296,10 @@ def plot_top_candidates(result, top):
     for i, ax in enumerate(axes[:, 0]):
         ax.plot(item["t"], item["x"][:, i], color="0.7", linewidth=2.0, label="measured")
         ax.set_ylabel(names[i])
-    sim = result.config["simulation"]
     for n, (_, row) in enumerate(result.ranking.head(top).iterrows()):
         c = by_name[row["candidate"]]
         model = Model(names, result.model.input_names, c.terms, c.coef)
-        traj = model.simulate(item["t"], item["x0"], item["u"], interpolation=item["interpolation"],
-                              method=sim["method"], rtol=sim["rtol"], atol=sim["atol_resolved"])
+        traj = run_model(model, item["t"], item["x0"], item["u"], result.simulation)
         for i, ax in enumerate(axes[:, 0]):
             ax.plot(item["t"], traj.x[:, i], color="black", linestyle=styles[n % len(styles)], linewidth=1.0,
                     label=f"#{row['rank']} {row['candidate']}")

@@ -7,12 +7,22 @@ states, or turns non-finite, is stopped and reported as diverged, never raised.
 
 from __future__ import annotations
 
+import time
 from dataclasses import dataclass
 
 import numpy as np
 from scipy.integrate import solve_ivp
 
 DIVERGED = "left the bounded region at t={t:.6g} (state {state!r})"
+NOT_FINITE = "its right-hand side is not finite at t={t:.6g}"
+TIME_LIMIT = "stopped at t={t:.6g}: the simulation took longer than the time limit of {limit:g} s"
+#: Default wall-clock limit of one solver call, seconds ([compute].simulation_time_limit).
+DEFAULT_TIME_LIMIT = 60.0
+
+
+class _TimeLimit(Exception):
+    def __init__(self, at):
+        self.at = at
 
 
 @dataclass(frozen=True)
@@ -26,6 +36,90 @@ class Simulation:
     x: np.ndarray
     diverged: bool
     message: str
+
+
+@dataclass(frozen=True)
+class SimulationSettings:
+    """How every simulation of a run is done, resolved once per run.
+
+    Validation, prediction bands, ranking, reports and ``discover simulate`` all take
+    this one object, so they integrate the same way.
+
+    Attributes
+    ----------
+    method : str
+        The ``solve_ivp`` method.
+    rtol : float
+    atol : ndarray of shape (n_states,)
+        Absolute tolerance in each state's units.
+    center, half_width : ndarray of shape (n_states,)
+        The bounded region: a trajectory that leaves it is stopped as diverged.
+    interpolation : str
+        ``"linear"``, ``"zoh"`` or ``"auto"`` (decided per run from its input).
+    time_limit : float
+        Wall-clock seconds for one solver call.
+    """
+
+    method: str
+    rtol: float
+    atol: np.ndarray
+    center: np.ndarray
+    half_width: np.ndarray
+    interpolation: str = "auto"
+    time_limit: float = 60.0
+
+    @property
+    def limits(self):
+        return self.center, self.half_width
+
+    def interpolation_for(self, u):
+        """The interpolation rule for a run with recorded input u."""
+        return guess_interpolation(u) if self.interpolation == "auto" else self.interpolation
+
+    def to_dict(self):
+        return {"method": self.method, "rtol": self.rtol, "atol": [float(a) for a in self.atol],
+                "center": [float(c) for c in self.center], "half_width": [float(h) for h in self.half_width],
+                "interpolation": self.interpolation, "time_limit": self.time_limit}
+
+    @classmethod
+    def from_dict(cls, document, n_states):
+        """From a model file's ``simulation`` entry; None if it is missing or malformed."""
+        try:
+            arrays = [np.asarray(document[k], dtype=float) for k in ("atol", "center", "half_width")]
+            method, rtol = str(document["method"]), float(document["rtol"])
+            interpolation, limit = str(document["interpolation"]), float(document["time_limit"])
+        except (KeyError, TypeError, ValueError):
+            return None
+        ok = (all(a.shape == (n_states,) and np.isfinite(a).all() for a in arrays)
+              and (arrays[2] > 0).all() and method in SOLVERS and interpolation in ("auto", "linear", "zoh")
+              and 0 < rtol < 1 and limit > 0)
+        return cls(method, rtol, *arrays, interpolation=interpolation, time_limit=limit) if ok else None
+
+
+SOLVERS = ("LSODA", "RK45", "DOP853", "Radau", "BDF", "RK23")
+
+
+def simulation_settings(x_low, x_high, *, method, rtol, atol, divergence_factor, interpolation, time_limit):
+    """Settings from the training states' extremes.
+
+    The absolute tolerance is ``atol`` if given, else 1e-6 times each state's range;
+    the bounded region is the training range widened ``divergence_factor`` times
+    about its centre.
+    """
+    spread = x_high - x_low
+    if atol is None:
+        atol = 1e-6 * np.where(spread > 0, spread, 1.0)
+    center = (x_low + x_high) / 2
+    half = np.maximum(spread / 2, 1e-12 + 1e-9 * np.abs(center))
+    return SimulationSettings(method, rtol, np.broadcast_to(np.asarray(atol, dtype=float), x_low.shape).copy(),
+                              center, divergence_factor * half, interpolation, time_limit)
+
+
+def run_model(model, t, x0, u, settings):
+    """Simulate a :class:`discover.model.Model` on one run with the run's settings."""
+    return model.simulate(t, x0, u, interpolation=settings.interpolation_for(u), method=settings.method,
+                          rtol=settings.rtol, atol=settings.atol, limits=settings.limits,
+                          time_limit=settings.time_limit)
 
 
 def guess_interpolation(u):
@@ -58,7 +152,7 @@ def input_function(t, u, interpolation):
 
 
 def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rtol=1e-6, atol=1e-9,
-                   limits=None):
+                   limits=None, time_limit=DEFAULT_TIME_LIMIT):
     """Integrate several members ``dX/dt = rhs(X, u, members)`` together in one solver.
 
     Parameters
@@ -74,6 +168,12 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
     limits : tuple (center, half_width) of ndarrays of shape (n_states,), optional
         The bounded region. A member that leaves it is stopped there (a terminal
         event), marked diverged, and the others go on from that time without it.
+    time_limit : float
+        Wall-clock seconds for the whole call; the members still running then are
+        stopped and the message says so.
+
+    A member whose right-hand side turns non-finite is frozen from then on and
+    counted as stopped at the first such time; the others are not affected.
 
     Returns
     -------
@@ -92,6 +192,8 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
     stopped_at = np.full(n_members, np.nan)
     atol_state = np.broadcast_to(np.asarray(atol, dtype=float), (n_states,))
     active, start, message = np.arange(n_members), t[0], ""
+    deadline = time.monotonic() + time_limit
+    first_bad = np.full(n_members, np.inf)  # first time each member's rhs was not finite
     if limits is not None:
         # A member that starts outside the region can never cross into it: stop it at once.
         center, half_width = limits
@@ -104,7 +206,14 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
         members = active.copy()
 
         def fun(s, flat):
-            return rhs(flat.reshape(len(members), n_states), u_of(s), members).ravel()
+            if time.monotonic() > deadline:
+                raise _TimeLimit(s)
+            dx = rhs(flat.reshape(len(members), n_states), u_of(s), members)
+            bad = ~np.isfinite(dx).all(axis=1)
+            if bad.any():
+                first_bad[members[bad]] = np.minimum(first_bad[members[bad]], s)
+                dx = np.where(bad[:, None], 0.0, dx)
+            return dx.ravel()
 
         events = None
         if limits is not None:
@@ -119,11 +228,19 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
             escape.terminal = True
             events = [escape]
         pending = t[t >= start]
-        with np.errstate(all="ignore"):
-            sol = solve_ivp(fun, (start, t[-1]), y, method=method, t_eval=pending, rtol=rtol,
-                            atol=np.tile(atol_state, len(members)), events=events)
-        # solve_ivp returns (n_states * n_active, n_points); ours is (member, time, state).
-        done = sol.y.T.reshape(-1, len(members), n_states).transpose(1, 0, 2)
+        try:
+            with np.errstate(all="ignore"):
+                sol = solve_ivp(fun, (start, t[-1]), y, method=method, t_eval=pending, rtol=rtol,
+                                atol=np.tile(atol_state, len(members)), events=events)
+        except _TimeLimit as stop:
+            message = TIME_LIMIT.format(t=stop.at, limit=time_limit)
+            stopped_at[members] = stop.at
+            x[np.ix_(members, np.flatnonzero(t >= stop.at))] = np.nan
+            break
+        # solve_ivp returns (n_states * n_active, n_points), a list when it reached no
+        # requested time; ours is (member, time, state).
+        values = np.asarray(sol.y, dtype=float).reshape(len(members) * n_states, -1)
+        done = values.T.reshape(-1, len(members), n_states).transpose(1, 0, 2)
         first = len(t) - len(pending)
         x[np.ix_(members, np.arange(first, first + done.shape[1]))] = done
         if sol.status == 1 and len(sol.t_events[0]):
@@ -143,13 +260,19 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
             message = f"the solver stopped: {sol.message}"
             stopped_at[members] = sol.t[-1] if len(sol.t) else start
         break
+    # Members frozen for a non-finite right-hand side: stopped at the first such time.
+    for m in np.flatnonzero(np.isfinite(first_bad)):
+        stopped_at[m] = first_bad[m] if np.isnan(stopped_at[m]) else min(stopped_at[m], first_bad[m])
+        x[m, t >= stopped_at[m]] = np.nan
+    # Anything else non-finite: stopped at the first sample where it shows.
     bad = ~np.isfinite(x).all(axis=2).all(axis=1) & np.isnan(stopped_at)
-    stopped_at[bad] = t[-1]
+    for m in np.flatnonzero(bad):
+        stopped_at[m] = t[np.argmin(np.isfinite(x[m]).all(axis=1))]
     return x, stopped_at, message
 
 
 def simulate(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rtol=1e-6, atol=1e-9,
-             limits=None, state_names=None):
+             limits=None, state_names=None, time_limit=DEFAULT_TIME_LIMIT):
     """Integrate ``dx/dt = rhs(x, u)`` from x0 and sample at the times ``t``.
 
     Parameters
@@ -171,14 +294,24 @@ def simulate(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rtol=1e-6
     x, stopped_at, message = simulate_batch(
         lambda X, u_now, members: np.atleast_2d(rhs(X[0], u_now)), t, x0[None, :], u,
         interpolation=interpolation, method=method, rtol=rtol, atol=atol, limits=limits,
+        time_limit=time_limit,
     )
     x = x[0]
     if message:
         return Simulation(np.asarray(t, dtype=float), x, True, message)
+    finite_rows = np.isfinite(x).all(axis=1)
+    if np.isfinite(stopped_at[0]) and not np.isfinite(x0).all():
+        return Simulation(np.asarray(t, dtype=float), x, True, "the initial state is not finite")
     if np.isfinite(stopped_at[0]):
-        last = x[np.isfinite(x).all(axis=1)][-1] if np.isfinite(x).all(axis=1).any() else x0
-        center, half_width = limits if limits is not None else (np.zeros_like(x0), np.ones_like(x0))
-        state = names[int(np.argmax(np.abs(last - center) / half_width))]
+        last = x[finite_rows][-1] if finite_rows.any() else x0
+        if limits is None:
+            return Simulation(np.asarray(t, dtype=float), x, True, NOT_FINITE.format(t=stopped_at[0]))
+        center, half_width = limits
+        excess = np.abs(last - center) / half_width
+        if excess.max() < 1.0 - 1e-6 and stopped_at[0] > t[0]:
+            # Stopped inside the region: the right-hand side itself turned non-finite.
+            return Simulation(np.asarray(t, dtype=float), x, True, NOT_FINITE.format(t=stopped_at[0]))
+        state = names[int(np.argmax(excess))]
         return Simulation(np.asarray(t, dtype=float), x, True, DIVERGED.format(t=stopped_at[0], state=state))
     return Simulation(np.asarray(t, dtype=float), x, False, "")
 

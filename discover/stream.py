@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from .config import derivative_options
-from .data import READERS, Run, _check_csv_layout, _column, _first_lines
+from .data import READERS, Run, _check_csv_layout, _column, file_hash, head_lines, normalize_name
 from .derivatives import DERIVATIVE_METHODS
 from .exceptions import DataError
 from .selection import BlockGrams
@@ -43,7 +43,7 @@ def half_width(method, options):
 def raw_chunks(path, rename, chunk_rows):
     """DataFrames of at most ``chunk_rows`` rows, with the config's column names."""
     kind = READERS.get(path.suffix.lower())
-    reverse = {column: name for name, column in rename.items()}
+    reverse = {normalize_name(column): name for name, column in rename.items()}
     if kind == "parquet":
         import pyarrow.parquet as pq
 
@@ -52,11 +52,13 @@ def raw_chunks(path, rename, chunk_rows):
         except Exception as err:
             raise DataError(f"{path}: not a readable Parquet file ({type(err).__name__}: {err}).") from None
         for batch in handle.iter_batches(batch_size=chunk_rows):
-            yield batch.to_pandas().rename(columns=reverse)
+            frame = batch.to_pandas()
+            frame.columns = [normalize_name(c) for c in frame.columns]
+            yield frame.rename(columns=reverse)
         return
-    _check_csv_layout(path, _first_lines(path))
+    _check_csv_layout(path, head_lines(path))
     for frame in pd.read_csv(path, chunksize=chunk_rows, skipinitialspace=True):
-        frame.columns = [str(c).strip() for c in frame.columns]
+        frame.columns = [normalize_name(c) for c in frame.columns]
         yield frame.rename(columns=reverse)
 
 
@@ -167,7 +169,7 @@ def count_rows(path, config, chunk_rows):
     time = config["data"]["time"]
     rename = {v: k for k, v in config["data"]["rename"].items()}
     column = [c for c, n in rename.items() if n == time] or [time]
-    _check_csv_layout(path, _first_lines(path))
+    _check_csv_layout(path, head_lines(path))
     try:
         return sum(len(f) for f in pd.read_csv(path, usecols=column, chunksize=max(chunk_rows, 100_000)))
     except ValueError:
@@ -238,5 +240,5 @@ def thin_run(path, config, chunk_rows, n_samples, stats):
         offset += len(t)
     t, x, u = (np.concatenate([p[i] for p in parts]) for i in range(3))
     # The extremes come from the full pass, so that limits and excitation checks are exact.
-    return Run(name=path.stem, t=t, x=x, u=u, source=str(path), touched=0, n_total=n_samples,
+    return Run(name=path.stem, t=t, x=x, u=u, source=str(path), touched=0, sha256=file_hash(path), n_total=n_samples,
                extremes=(stats.x_min, stats.x_max, stats.u_min, stats.u_max))

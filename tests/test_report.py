@@ -162,7 +162,7 @@ def test_ship_report_tables_are_real_tables_with_the_results(ship_report):
                              f"{values['coefficient_high']:.4g}"] for expr, coefficient, values in kept]
     # Data files with their SHA-256 (hashlib's, via the provenance record).
     files = page.table("data files")
-    for entry in discover.pipeline.provenance(result)["data_files"]:
+    for entry in discover.provenance.provenance(result)["data_files"]:
         assert [entry["run"], entry["path"], entry["sha256"]] in [[r[0], r[3], r[4]] for r in files[1:]]
     # The caution before the equations; the config as run in a <pre>.
     assert text.index(discover.report.CAUTION) < text.index('id="equations"')
