@@ -42,7 +42,9 @@ def least_squares_start(gram, cross):
     """Minimum-norm least-squares solution from Grams.
 
     ``lstsq(Θ, Ẋ)`` is ``pinv(Θ) Ẋ = pinv(ΘᵀΘ) ΘᵀẊ``, the minimum-norm solution of
-    ``ΘᵀΘ c = ΘᵀẊ``; a singular Gram (identically zero or collinear columns) is fine.
+    ``ΘᵀΘ c = ΘᵀẊ``; a singular Gram (identically zero or collinear columns) is fine. The
+    Gram squares the condition number of Θ, so on nearly collinear columns (condition of
+    the Gram near 1/eps) this start can differ from ``lstsq`` on the rows.
     """
     return np.linalg.lstsq(gram, cross, rcond=None)[0]
 
