@@ -180,7 +180,7 @@ def linear_kalman_reference(t, y, u, x0, x0_cov, interpolation):
 def test_filter_equals_linear_kalman_filter_on_jittered_times_with_input(interpolation):
     # Reference: filterpy.kalman.KalmanFilter (the linear Kalman filter, Kalman 1960)
     # on the exactly discretised system, one F, Q and input effect per interval.
-    t = jittered_times(150, 0.05, seed=2)
+    t = jittered_times(100, 0.05, seed=2)
     u = (np.sin(0.9 * t) + 0.5 * np.sign(np.sin(3.1 * t)))[:, None]
     x0, x0_cov = np.array([1.0, -0.5]), np.diag([0.2**2, 0.3**2])
     _, y = simulate_linear_gaussian(t, u, x0, x0_cov, seed=3)
@@ -198,7 +198,7 @@ def test_smoother_equals_linear_rts_smoother_on_jittered_times():
     # run has none.
     from filterpy.kalman import rts_smoother
 
-    t = jittered_times(150, 0.05, seed=4)
+    t = jittered_times(100, 0.05, seed=4)
     u = np.zeros((len(t), 1))
     x0, x0_cov = np.array([1.0, -0.5]), np.diag([0.2**2, 0.3**2])
     _, y = simulate_linear_gaussian(t, u, x0, x0_cov, seed=5)
@@ -331,13 +331,18 @@ BAD_INPUTS = [
     ("x0", lambda g: [1.0, 0.0, 0.0], DataError, r"`x0` must have shape \(2,\), one value per state"),
     ("f", lambda g: (lambda x, u: x[:, :1]), DataError, r"`f\(x, u\)` must return shape \(n, 2\)"),
     ("state_names", lambda g: ["p", "p"], DataError, r"`state_names` must be distinct"),
+    ("h", lambda g: (lambda x, u: np.full((len(x), 1), np.nan)), DataError,
+     r"`h\(x, u\)` is not finite at x0=\[1\.0, 0\.0\]"),
     ("h", lambda g: (lambda x, u: x), DataError, r"`h\(x, u\)` must return shape \(n, 1\)"),
     ("state_names", lambda g: ["position"], DataError, r"`x0` must have shape \(1,\)"),
     ("measurement_std", lambda g: 0.0, DataError, r"`measurement_std` must be > 0"),
-    ("measurement_std", lambda g: [0.1, 0.1], DataError, r"`measurement_std` must have shape \(1,\), one value per output"),
+    ("measurement_std", lambda g: [0.1, 0.1], DataError,
+     r"`measurement_std` must have shape \(1,\), one value per output"),
     ("process_std", lambda g: [-1.0, 0.1], DataError, r"`process_std` must be >= 0"),
     ("x0_cov", lambda g: np.diag([1.0, -1.0]), DataError, r"`x0_cov` must be symmetric positive definite"),
-    ("interpolation", lambda g: "cubic", ConfigError, r"`interpolation` must be 'linear' or 'zoh'. Got 'cubic'"),
+    ("x0_cov", lambda g: np.array([[1.0, 0.5], [0.0, 1.0]]), DataError, r"`x0_cov` must be symmetric"),
+    ("interpolation", lambda g: "cubic", ConfigError,
+     r"`interpolation` must be 'linear' or 'zoh'. Got 'cubic'"),
 ]
 
 
