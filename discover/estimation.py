@@ -540,8 +540,10 @@ def estimate_states(
         if not process_std.any():
             return np.zeros((n_states, n_states))
         a = _jacobian(f, x, u[k], np.sqrt(np.clip(np.diag(cov), 0.0, None)))
-        if not np.all(np.isfinite(a)):
-            raise DataError(NOT_FINITE.format(start=t[k], stop=t[k + 1], state=state_names[0]))
+        rows = np.isfinite(a).all(axis=1)
+        if not rows.all():
+            bad = state_names[int(np.argmin(rows))]
+            raise DataError(NOT_FINITE.format(start=t[k], stop=t[k + 1], state=bad))
         return _van_loan_noise(a, diffusion, dts[k])
 
     points = MerweScaledSigmaPoints(n_states, alpha=alpha, beta=beta, kappa=kappa)
