@@ -323,6 +323,12 @@ class Refinement:
         Per hidden state: whether its scale is free or which rule sets it.
     standard_errors : dict of str to dict of str to float
         Like ``coefficients``; NaN for fixed and non-identifiable coefficients.
+    standard_errors_hac : dict of str to dict of str to float
+        The same from the Newey–West covariance (:func:`newey_west_covariance`),
+        valid when the residuals are autocorrelated (model error, coloured noise);
+        close to ``standard_errors`` when they are white.
+    hac_lags : int
+        Its lags as resolved (-1 when not computed).
     covariance : ndarray of shape (n_free, n_free)
         Of the free coefficients (order of ``free_names``), σ²·(JᵀJ)⁺ restricted to
         them; NaN rows and columns for non-identifiable ones.
@@ -363,6 +369,8 @@ class Refinement:
     not_identifiable: tuple
     scale_notes: tuple
     standard_errors: dict
+    standard_errors_hac: dict
+    hac_lags: int
     covariance: np.ndarray
     free_names: tuple
     residual_variance: float
@@ -469,6 +477,80 @@ def covariance_from_jacobian(jacobian, residuals, *, rtol=1e-6):
     v = directions[:, keep] / values[keep]
     covariance = sigma2 * (v @ v.T) / np.outer(norms, norms)
     return covariance, sigma2, rank
+
+
+def newey_west_covariance(jacobian, residuals, groups, *, lags, rtol=1e-6):
+    """Covariance of least-squares estimates robust to autocorrelated residuals.
+
+    The sandwich (JᵀJ)⁺·Ŝ·(JᵀJ)⁺ of Newey & West (1987, Econometrica 55(3)), with
+    Ŝ = Σ_l w_l Σ_n (s_n s_{n−l}ᵀ + s_{n−l} s_nᵀ) over the scores s_n = J_nᵀ r_n of
+    the samples, Bartlett weights w_l = 1 − l/(lags + 1) (w_0 counted once), and lags
+    taken within each group (run), never across. Without correction for degrees of
+    freedom (statsmodels' ``use_correction=False``).
+
+    Parameters
+    ----------
+    jacobian : ndarray of shape (n_samples, n_outputs, n_parameters)
+    residuals : ndarray of shape (n_samples, n_outputs)
+    groups : ndarray of shape (n_samples,)
+        Run of each sample; samples of a run are consecutive.
+    lags : int
+        Highest lag with a non-zero weight.
+    rtol : float, default=1e-6
+        Truncation of the pseudo-inverse, as :func:`covariance_from_jacobian`.
+
+    Returns
+    -------
+    ndarray of shape (n_parameters, n_parameters)
+    """
+    jacobian = np.asarray(jacobian, dtype=float)
+    n_params = jacobian.shape[2]
+    scores = np.einsum("nop,no->np", jacobian, residuals)
+    middle = np.zeros((n_params, n_params))
+    groups = np.asarray(groups)
+    for g in np.unique(groups):
+        s = scores[groups == g]
+        middle += s.T @ s
+        for lag in range(1, min(lags, len(s) - 1) + 1):
+            product = s[lag:].T @ s[:-lag]
+            middle += (1.0 - lag / (lags + 1.0)) * (product + product.T)
+    values, directions, norms = scaled_svd(jacobian.reshape(-1, n_params))
+    keep = values > rtol * values[0] if values.size and values[0] > 0 else np.zeros(len(values), bool)
+    # (JᵀJ)⁺ in data units, from the scaled SVD.
+    v = directions[:, keep] / values[keep]
+    bread = (v @ v.T) / np.outer(norms, norms)
+    return bread @ middle @ bread
+
+
+def andrews_lags(residuals, groups):
+    """Bandwidth for the Bartlett kernel from an AR(1) fit to the residuals.
+
+    Andrews (1991, Econometrica 59(3)) plug-in rule, from memory: lags =
+    1.1447·(α·n)^(1/3) with α = 4ρ² / ((1 − ρ)²(1 + ρ)²) for one AR(1) series with
+    lag-one autocorrelation ρ. Here ρ is pooled over the outputs and runs (an
+    approximation: Andrews fits each score component). ρ = 0 gives 0 lags, the
+    ordinary covariance.
+
+    Parameters
+    ----------
+    residuals : ndarray of shape (n_samples, n_outputs)
+    groups : ndarray of shape (n_samples,)
+
+    Returns
+    -------
+    int
+    """
+    residuals = np.asarray(residuals, dtype=float)
+    groups = np.asarray(groups)
+    lagged, total = 0.0, 0.0
+    for g in np.unique(groups):
+        r = residuals[groups == g]
+        r = r - r.mean(axis=0)
+        lagged += float(np.sum(r[1:] * r[:-1]))
+        total += float(np.sum(r[:-1] ** 2))
+    rho = float(np.clip(lagged / total, -0.99, 0.99)) if total > 0 else 0.0
+    alpha = 4.0 * rho**2 / ((1.0 - rho) ** 2 * (1.0 + rho) ** 2)
+    return int(1.1447 * (alpha * len(residuals)) ** (1.0 / 3.0))
 
 
 # --------------------------------------------------------------------------- the compiled problem
@@ -963,6 +1045,7 @@ def refine(
     time_limit: float = 120.0,
     identifiability_rtol: float = 1e-6,
     divergence_factor: float = 100.0,
+    hac_lags: int | None = None,
 ) -> Refinement:
     """Fit the free coefficients of ``structure`` to ``runs`` by output error (multiple shooting).
 
@@ -1008,6 +1091,9 @@ def refine(
     divergence_factor : float, default=100
         A segment is stopped as diverged outside centre ± this × half-range of the
         starting trajectories.
+    hac_lags : int or None, default=None
+        Lags of the Newey–West standard errors; None: :func:`andrews_lags` of the
+        free-run residuals.
 
     Returns
     -------
@@ -1031,12 +1117,13 @@ def refine(
                        fixed_initial=fixed_initial, state_guess=state_guess, output_noise=output_noise,
                        continuity_weight=continuity_weight, interpolation=interpolation, substeps=substeps,
                        jacobian=jacobian, max_nfev=max_nfev, time_limit=time_limit,
-                       identifiability_rtol=identifiability_rtol, divergence_factor=divergence_factor)
+                       identifiability_rtol=identifiability_rtol, divergence_factor=divergence_factor,
+                       hac_lags=hac_lags)
 
 
 def _refine(structure, runs, *, segment_length, initial_guess, fixed_initial, state_guess, output_noise,
             continuity_weight, interpolation, substeps, jacobian, max_nfev, time_limit, identifiability_rtol,
-            divergence_factor):
+            divergence_factor, hac_lags):
     if not isinstance(structure, Structure):
         raise ConfigError(f"refine: `structure` must be a Structure. Got {type(structure).__name__}.")
     runs = _check_runs(structure, runs)
@@ -1054,6 +1141,8 @@ def _refine(structure, runs, *, segment_length, initial_guess, fixed_initial, st
             raise ConfigError(f"refine: `{name}` must be a number > {low:g}. Got {value!r}.")
     if not isinstance(max_nfev, int) or max_nfev < 1:
         raise ConfigError(f"refine: `max_nfev` must be an int >= 1. Got {max_nfev!r}.")
+    if hac_lags is not None and (not isinstance(hac_lags, int) or hac_lags < 0):
+        raise ConfigError(f"refine: `hac_lags` must be an int >= 0 or None. Got {hac_lags!r}.")
     if substeps is not None and (not isinstance(substeps, int) or substeps < 1):
         raise ConfigError(f"refine: `substeps` must be an int >= 1 or None. Got {substeps!r}.")
     if segment_length is None:
@@ -1188,6 +1277,8 @@ def _refine(structure, runs, *, segment_length, initial_guess, fixed_initial, st
     parameter_names = free_names + initial_names
     n_free = len(free_names)
     standard_errors = {s: {t: math.nan for t in structure.equations[s]} for s in states}
+    standard_errors_hac = {s: dict(errors) for s, errors in standard_errors.items()}
+    resolved_lags = -1
     covariance = np.full((n_free, n_free), np.nan)
     not_identifiable, scale_notes = [], []
     sigma2 = math.nan
@@ -1207,10 +1298,18 @@ def _refine(structure, runs, *, segment_length, initial_guess, fixed_initial, st
             not_identifiable.append(_direction_text(v, norms, free_values, parameter_names, n_free, runs,
                                                     states, free_init))
         undetermined = np.linalg.norm(null_basis, axis=1) > NULL_COMPONENT
+        # Autocorrelated residuals (model error, coloured noise): Newey–West sandwich.
+        n_total = len(free_run.y)
+        groups = np.repeat(np.arange(n_runs), [len(run.t) for run in runs])
+        residual_rows = r_free[:n_out_res].reshape(n_total, dynamics.n_outputs)
+        resolved_lags = andrews_lags(residual_rows, groups) if hac_lags is None else hac_lags
+        cov_hac = newey_west_covariance(j_out.reshape(n_total, dynamics.n_outputs, -1), residual_rows, groups,
+                                        lags=resolved_lags, rtol=identifiability_rtol)
         free_pairs = [pair for pair, f in zip(dynamics.coef_pairs, free_coef) if f]
         for j, (s, t) in enumerate(free_pairs):
             if not undetermined[j]:
                 standard_errors[s][t] = float(math.sqrt(max(cov[j, j], 0.0)))
+                standard_errors_hac[s][t] = float(math.sqrt(max(cov_hac[j, j], 0.0)))
         covariance = cov[:n_free, :n_free].copy()
         covariance[undetermined[:n_free], :] = np.nan
         covariance[:, undetermined[:n_free]] = np.nan
@@ -1257,6 +1356,8 @@ def _refine(structure, runs, *, segment_length, initial_guess, fixed_initial, st
         not_identifiable=tuple(not_identifiable),
         scale_notes=tuple(scale_notes),
         standard_errors=standard_errors,
+        standard_errors_hac=standard_errors_hac,
+        hac_lags=int(resolved_lags),
         covariance=covariance,
         free_names=free_names,
         residual_variance=float(sigma2),

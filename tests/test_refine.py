@@ -22,7 +22,9 @@ from discover.refine import (
     _Dynamics,
     _integrate,
     _layout,
+    andrews_lags,
     covariance_from_jacobian,
+    newey_west_covariance,
     noise_level,
     refine,
     structure_from_model,
@@ -144,6 +146,9 @@ def test_refinement_removes_the_bias_of_the_derivative_fit():
         assert abs(result.coefficients["v"][term] - value) < 4 * se
     # Output noise estimated from the data: σ² of the noise-scaled residuals is near 1.
     assert 0.8 < result.residual_variance < 1.25
+    # White residuals: the Newey–West errors agree with the ordinary ones.
+    for term in DUFFING_TERMS:
+        assert_allclose(result.standard_errors_hac["v"][term], result.standard_errors["v"][term], rtol=0.3)
 
 
 def test_free_run_matches_solve_ivp_on_the_refined_model():
@@ -285,6 +290,25 @@ def test_covariance_matches_statsmodels_ols():
     assert rank == 3
     assert_allclose(sigma2, fit.scale, rtol=1e-10)
     assert_allclose(np.sqrt(np.diag(covariance)), fit.bse, rtol=1e-8)
+
+
+def test_newey_west_matches_statsmodels_hac():
+    # Reference: statsmodels OLS with cov_type="HAC" (Bartlett kernel, no small-sample correction).
+    sm = pytest.importorskip("statsmodels.api")
+    rng = np.random.default_rng(4)
+    n = 300
+    noise = np.zeros(n)
+    for k in range(1, n):  # AR(1) errors, rho = 0.8
+        noise[k] = 0.8 * noise[k - 1] + rng.normal()
+    X = np.column_stack([rng.normal(size=n), 0.1 * np.cumsum(rng.normal(size=n))])
+    y = X @ [1.0, 2.0] + noise
+    for lags in (0, 7):
+        fit = sm.OLS(y, X).fit(cov_type="HAC", cov_kwds={"maxlags": lags, "use_correction": False})
+        covariance = newey_west_covariance(X[:, None, :], fit.resid[:, None], np.zeros(n), lags=lags)
+        assert_allclose(np.sqrt(np.diag(covariance)), fit.bse, rtol=1e-10)
+    # Autocorrelated residuals get lags; white ones none.
+    assert andrews_lags(fit.resid[:, None], np.zeros(n)) > 5
+    assert andrews_lags(rng.normal(size=(n, 1)), np.zeros(n)) <= 2
 
 
 def test_noise_level_from_third_differences():
