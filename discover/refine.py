@@ -22,7 +22,10 @@ state, from a simulation of the starting model. The residuals are
   the trajectory continuous at the optimum. Measured on the Duffing test case: the
   largest gap was 0.087, 0.0042 and 6e-5 noise levels at weights 10, 100 and 1000,
   and at 1000 the coefficients equal single shooting's to 5 digits (at 100 they were
-  0.07 % off), with the same number of iterations; hence the default 1000.
+  0.07 % off), with the same number of iterations; hence the default 1000. The fit
+  runs first at a tenth of the weight and then at the full weight from there
+  (continuation), since a heavy penalty from the start makes weakly determined
+  directions converge slowly.
 
 Integration is a fixed-step classical Runge–Kutta (RK4) on the sample grid (with
 ``substeps`` per sample interval), all segments of all runs stepped together as one
@@ -61,12 +64,19 @@ reported as combinations of named coefficients (relative changes). Standard erro
 of the determined coefficients come from σ²·(JᵀJ)⁺ with σ² from the free-run
 residuals (the truncated pseudo-inverse gives the variance of every function of the
 parameters that the data determine; Searle 1971, Linear Models, ch. 5, from memory).
+Output-error residuals are autocorrelated when the model is wrong or the noise is
+coloured, and then σ²·(JᵀJ)⁻¹ is too small; the Newey–West (1987) sandwich with an
+Andrews (1991) bandwidth gives standard errors that allow for it
+(``standard_errors_hac``).
 
 A hidden state's scale: if every term that contains hidden state h is a monomial in
 it and no output uses it, x_h → a·x_h with matching changes of the coefficients
 leaves the outputs unchanged. A scale rule set by the caller removes it: fix one of
 those coefficients (``Structure.fixed``) or a non-zero initial value
-(``fixed_initial``); :attr:`Refinement.scale_notes` says which holds.
+(``fixed_initial``); :attr:`Refinement.scale_notes` says which holds. Without a rule
+the fit holds one such coefficient at its starting value (along a flat direction
+the optimiser would otherwise drift, and the continuity penalty pulls the hidden
+state toward zero), and the report names the direction as not determined.
 
 Caution: a refined model is fitted to the training runs only. Before a model is used
 to control real equipment, validate it on held-out runs and under the operating
@@ -78,7 +88,7 @@ from __future__ import annotations
 import math
 import time
 from dataclasses import dataclass
-from typing import Mapping, Sequence
+from typing import Collection, Mapping, Sequence
 
 import numpy as np
 from scipy import sparse
@@ -92,6 +102,20 @@ from .model import Model
 from .simulate import guess_interpolation
 from .symbolic import derivative
 from .terms import term_key
+
+__all__ = [
+    "MeasuredRun",
+    "Structure",
+    "Refinement",
+    "refine",
+    "structure_from_model",
+    "coefficient_name",
+    "noise_level",
+    "scaled_svd",
+    "covariance_from_jacobian",
+    "newey_west_covariance",
+    "andrews_lags",
+]
 
 #: Largest h·ρ of one RK4 substep (ρ: largest eigenvalue modulus of ∂f/∂x). RK4's
 #: local error is about (h·ρ)^5 / 120 relative; at 0.2 that is 3e-6 per step.
@@ -153,7 +177,7 @@ class MeasuredRun:
 
     t: np.ndarray
     y: np.ndarray
-    u: np.ndarray
+    u: np.ndarray | None
     name: str = ""
 
 
@@ -184,12 +208,12 @@ class Structure:
         unknown column; ConfigError for a hidden state that no output depends on.
     """
 
-    state_names: tuple
-    input_names: tuple
+    state_names: tuple[str, ...]
+    input_names: tuple[str, ...]
     equations: Mapping[str, Mapping[str, float]]
-    hidden: tuple = ()
+    hidden: tuple[str, ...] = ()
     outputs: Mapping[str, str] | None = None
-    fixed: frozenset = frozenset()
+    fixed: frozenset[tuple[str, str]] = frozenset()
 
     def __post_init__(self):
         states, inputs = tuple(self.state_names), tuple(self.input_names)
@@ -267,21 +291,22 @@ class Structure:
                 )
 
     @property
-    def output_names(self):
+    def output_names(self) -> tuple[str, ...]:
         return tuple(self.outputs)
 
     @property
-    def coefficient_names(self):
+    def coefficient_names(self) -> tuple[str, ...]:
         """Name of every coefficient, ``"d(state)/dt:term"``, in equation order."""
         return tuple(coefficient_name(s, term) for s in self.state_names for term in self.equations[s])
 
 
-def coefficient_name(state, term):
+def coefficient_name(state: str, term: str) -> str:
     """``coefficient_name("i", "v_C") == "d(i)/dt:v_C"``."""
     return f"d({state})/dt:{term}"
 
 
-def structure_from_model(model, *, hidden=(), outputs=None, fixed=()):
+def structure_from_model(model: Model, *, hidden: Sequence[str] = (), outputs: Mapping[str, str] | None = None,
+                         fixed: Collection[tuple[str, str]] = ()) -> Structure:
     """The :class:`Structure` of a :class:`discover.model.Model`: its support and coefficients."""
     equations = {
         state: {model.terms[j]: float(model.coef[j, i]) for j in np.flatnonzero(model.coef[:, i])}
@@ -357,14 +382,14 @@ class Refinement:
         What the routine decided on the way (substeps raised, analysis skipped).
     """
 
-    state_names: tuple
-    input_names: tuple
-    output_names: tuple
-    hidden: tuple
-    coefficients: dict
-    fixed: frozenset
-    initial_states: tuple
-    segment_starts: tuple
+    state_names: tuple[str, ...]
+    input_names: tuple[str, ...]
+    output_names: tuple[str, ...]
+    hidden: tuple[str, ...]
+    coefficients: dict[str, dict[str, float]]
+    fixed: frozenset[tuple[str, str]]
+    initial_states: tuple[np.ndarray, ...]
+    segment_starts: tuple[np.ndarray, ...]
     segment_length: int
     substeps: int
     cost: float
@@ -375,22 +400,22 @@ class Refinement:
     continuity_gap: float
     output_scale: np.ndarray
     singular_values: np.ndarray
-    parameter_names: tuple
-    not_identifiable: tuple
-    scale_notes: tuple
-    standard_errors: dict
-    standard_errors_hac: dict
+    parameter_names: tuple[str, ...]
+    not_identifiable: tuple[str, ...]
+    scale_notes: tuple[str, ...]
+    standard_errors: dict[str, dict[str, float]]
+    standard_errors_hac: dict[str, dict[str, float]]
     hac_lags: int
     covariance: np.ndarray
-    free_names: tuple
+    free_names: tuple[str, ...]
     residual_variance: float
-    simulated_states: tuple
-    simulated_outputs: tuple
+    simulated_states: tuple[np.ndarray, ...]
+    simulated_outputs: tuple[np.ndarray, ...]
     output_rmse: np.ndarray
     interpolation: str = "linear"
-    notes: tuple = ()
+    notes: tuple[str, ...] = ()
 
-    def model(self):
+    def model(self) -> Model:
         """The refined dynamics as a :class:`discover.model.Model` (hidden states included)."""
         terms = []
         for state in self.state_names:
@@ -406,7 +431,7 @@ class Refinement:
 # --------------------------------------------------------------------------- kernels on plain arrays
 
 
-def noise_level(y_runs):
+def noise_level(y_runs: Sequence[np.ndarray]) -> np.ndarray:
     """Noise standard deviation of each column, from third differences.
 
     For white noise e, E[(Δ³e)²] = C(6, 3)·σ² = 20·σ²; a smooth signal sampled
@@ -433,7 +458,7 @@ def noise_level(y_runs):
     return np.maximum(sigma, 1e-9 * np.where(spread > 0, spread, 1.0))
 
 
-def scaled_svd(jacobian):
+def scaled_svd(jacobian: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """SVD of the Jacobian with columns scaled to unit norm.
 
     Parameters
@@ -461,7 +486,8 @@ def scaled_svd(jacobian):
     return values, vt.T, norms
 
 
-def covariance_from_jacobian(jacobian, residuals, *, rtol=1e-6):
+def covariance_from_jacobian(jacobian: np.ndarray, residuals: np.ndarray, *,
+                             rtol: float = 1e-6) -> tuple[np.ndarray, float, int]:
     """σ²·(JᵀJ)⁺ with σ² = Σr² / (n − rank), truncated at ``rtol`` of the largest singular value.
 
     Columns are scaled to unit norm before the SVD, so the truncation does not depend
@@ -489,7 +515,8 @@ def covariance_from_jacobian(jacobian, residuals, *, rtol=1e-6):
     return covariance, sigma2, rank
 
 
-def newey_west_covariance(jacobian, residuals, groups, *, lags, rtol=1e-6):
+def newey_west_covariance(jacobian: np.ndarray, residuals: np.ndarray, groups: np.ndarray, *, lags: int,
+                          rtol: float = 1e-6) -> np.ndarray:
     """Covariance of least-squares estimates robust to autocorrelated residuals.
 
     The sandwich (JᵀJ)⁺·Ŝ·(JᵀJ)⁺ of Newey & West (1987, Econometrica 55(3)), with
@@ -532,7 +559,7 @@ def newey_west_covariance(jacobian, residuals, groups, *, lags, rtol=1e-6):
     return bread @ middle @ bread
 
 
-def andrews_lags(residuals, groups):
+def andrews_lags(residuals: np.ndarray, groups: np.ndarray) -> int:
     """Bandwidth for the Bartlett kernel from an AR(1) fit to the residuals.
 
     Andrews (1991, Econometrica 59(3)) plug-in rule, from memory: lags =
@@ -1490,30 +1517,32 @@ def _signed(value, name, first):
 
 
 def _direction_text(v, norms, values, names, n_free, runs, states, free_init):
-    """A null direction as a sentence over named coefficients (relative changes)."""
+    """A null direction as a sentence over named coefficients (relative changes).
+
+    ``v`` is a unit vector in column-scaled coordinates; the parameter change is
+    v / norms. Coefficients are shown as δθ/θ (as the change itself where θ = 0),
+    normalised to unit length; initial values only by the states they belong to.
+    """
     delta = v / norms
     nonzero = values[:n_free] != 0
-    # δθ/θ (a relative change) where θ ≠ 0, else the change itself.
     coef_part = np.where(nonzero, delta[:n_free] / np.where(nonzero, values[:n_free], 1.0), delta[:n_free])
     total = np.linalg.norm(v)
-    pieces = []
+    index = [k for r in range(len(runs)) for k in range(len(states)) if free_init[r, k]]
+    initial = [states[k] for k in dict.fromkeys(index)
+               if np.linalg.norm(v[n_free:][np.array(index) == k]) > SHOWN_COMPONENT * total]
+    initial_text = " and ".join(f"the initial values of {state}" for state in initial)
     if n_free and np.linalg.norm(v[:n_free]) > SHOWN_COMPONENT * total:
         rel = coef_part / np.linalg.norm(coef_part)
         shown = [(rel[j], names[j]) for j in range(n_free) if abs(rel[j]) >= SHOWN_COMPONENT]
-        if shown and shown[0][0] < 0:
+        if shown[0][0] < 0:  # the sign of a direction is arbitrary: lead with a plus
             shown = [(-a, n) for a, n in shown]
         text = "".join(_signed(a, n, i == 0) for i, (a, n) in enumerate(shown))
-        pieces.append(f"{text} (relative changes)")
-    # Initial values, grouped by state.
-    init = v[n_free:]
-    index = [(r, k) for r in range(len(runs)) for k in range(len(states)) if free_init[r, k]]
-    grouped = {}
-    for (r, k), component in zip(index, init):
-        grouped.setdefault(k, []).append(component)
-    for k, comps in grouped.items():
-        if np.linalg.norm(comps) > SHOWN_COMPONENT * total:
-            pieces.append(f"the initial values of {states[k]}")
-    combination = ", together with ".join(pieces) if pieces else "a combination of the parameters"
+        together = f", together with {initial_text}" if initial else ""
+        combination = f"{text} (relative changes{together})"
+    elif initial:
+        combination = f"a combination of {initial_text}"
+    else:
+        combination = "a combination of the parameters"
     return NOT_DETERMINED.format(combination=combination)
 
 
