@@ -22,8 +22,8 @@ options are checked here, and they raise :class:`~discover.exceptions.ConfigErro
 naming the ``[derivatives]`` key.
 """
 
-import inspect
 import math
+from dataclasses import dataclass
 from numbers import Integral, Real
 
 import numpy as np
@@ -92,13 +92,13 @@ def _check_smoothing_spline_options(lam):
         )
 
 
-def _check_kalman_options(alpha):
-    if alpha is not None and not (
-        _is_real(alpha) and math.isfinite(alpha) and alpha > 0
+def _check_kalman_options(noise_ratio):
+    if noise_ratio is not None and not (
+        _is_real(noise_ratio) and math.isfinite(noise_ratio) and noise_ratio > 0
     ):
         raise ConfigError(
-            "[derivatives].alpha must be a number > 0, or omitted for the "
-            f"default alpha = 1. Got {alpha!r}."
+            "[derivatives].noise_ratio must be a number > 0, or omitted for the "
+            f"default noise_ratio = 1. Got {noise_ratio!r}."
         )
 
 
@@ -132,7 +132,7 @@ def _uniform_step(t, what, advice):
 def _time_in_samples(t):
     """Rescale ``t`` so the median step is 1; return ``(s, step)`` with t - t[0] = s * step.
 
-    Smoothing weights (``lam``, ``alpha``) are then unit-free: both terms of the
+    Smoothing weights (``lam``, ``noise_ratio``) are then unit-free: both terms of the
     penalised objectives are in the state's units squared, and time is counted
     in samples. It also keeps scipy's spline solver well conditioned: in data
     units, steps of 1e-6 make the GCV problem ill-posed and steps of 1e-3 or
@@ -297,7 +297,7 @@ def smoothing_spline(t, x, *, lam=None):
     return x_smooth, x_dot
 
 
-def kalman(t, x, *, alpha=None):
+def kalman(t, x, *, noise_ratio=None):
     """Kalman smoother with a random-walk derivative (the ``derivative`` package).
 
     Models each state as having a derivative that is a Brownian motion, seen
@@ -310,15 +310,15 @@ def kalman(t, x, *, alpha=None):
         Strictly increasing times; non-uniform steps are fine.
     x : ndarray of shape (n_samples, n_states)
         States, one row per time.
-    alpha : float > 0 or None, default=None
+    noise_ratio : float > 0 or None, default=None
         Ratio of measurement-noise variance to process-noise variance, with
         time rescaled so that the median step is 1, as ``lam`` in
         :func:`smoothing_spline` (in data units it is
-        ``alpha * median_step**3``). The package's own ``alpha`` is in data
-        time units, where its default of 1 flattens a signal sampled at
-        10 Hz or faster. None passes None to the package, which then uses
-        alpha = 1 (``derivative`` 0.6.3, ``dglobal.Kalman._global``); larger
-        values smooth more.
+        ``noise_ratio * median_step**3``). The package's own ``alpha`` is in
+        data time units, where its default of 1 flattens a signal sampled at
+        10 Hz or faster, so a value meant for it is not a value for this option.
+        None passes None to the package, which then uses 1 (``derivative``
+        0.6.3, ``dglobal.Kalman._global``); larger values smooth more.
 
     Returns
     -------
@@ -330,26 +330,26 @@ def kalman(t, x, *, alpha=None):
     Raises
     ------
     ConfigError
-        If ``alpha`` is not a positive number.
+        If ``noise_ratio`` is not a positive number.
     DataError
         If the run has fewer than 5 samples.
 
     Notes
     -----
-    With the same ``alpha`` this smoother gives the cubic smoothing spline
-    with ``lam = alpha`` (Wahba 1978); the tests check it. The package solves
+    With the same ``noise_ratio`` this smoother gives the cubic smoothing spline
+    with ``lam = noise_ratio`` (Wahba 1978); the tests check it. The package solves
     a dense (2 n_samples) x (2 n_samples) system per state: about 1.4 s for
     2000 samples, and cubic growth beyond (about 3 GB of memory at 10 000
     samples).
     """
-    _check_kalman_options(alpha)
+    _check_kalman_options(noise_ratio)
     x = np.asarray(x, dtype=np.float64)
     _require_samples(len(t), 5, "kalman")
     # Imported here: the package pulls in scikit-learn (over a second at import).
     import derivative
 
     s, step = _time_in_samples(np.asarray(t, dtype=np.float64))
-    smoother = derivative.Kalman(alpha=alpha)
+    smoother = derivative.Kalman(alpha=noise_ratio)
     x_smooth = np.empty_like(x)
     x_dot = np.empty_like(x)
     # Column by column: the package caches one solve, which .d and .x then share.
@@ -359,64 +359,96 @@ def kalman(t, x, *, alpha=None):
     return x_smooth, x_dot
 
 
-DERIVATIVE_METHODS = {
-    "finite_difference": finite_difference,
-    "savitzky_golay": savitzky_golay,
-    "smoothing_spline": smoothing_spline,
-    "kalman": kalman,
-}
+@dataclass(frozen=True)
+class Option:
+    """One keyword option of a derivative method, with its limits (the config reads these)."""
 
-_OPTION_CHECKS = {
-    "finite_difference": _check_finite_difference_options,
-    "savitzky_golay": _check_savitzky_golay_options,
-    "smoothing_spline": _check_smoothing_spline_options,
-    "kalman": _check_kalman_options,
-}
+    name: str
+    kind: str  # "int" or "float"
+    default: object
+    minimum: float | None = None
+    odd: bool = False
+    nullable: bool = False
+    choices: tuple = ()
 
-# Samples to drop at each end of a run, as a function of the method's options
-# (defaults filled in). Common practice, with these reasons:
-# - finite_difference: the ends use one-sided stencils with larger error
-#   (order 2: 1 sample; order 4: 2 samples);
-# - savitzky_golay: the first and last window // 2 samples come from an
-#   off-centre polynomial fit, whose slope is the noisiest;
-# - smoothing_spline: the natural end conditions (zero curvature) bias the slope;
-# - kalman: the smoother has data on one side only near the ends.
-DEFAULT_TRIM = {
-    "finite_difference": lambda options: options["order"] // 2,
-    "savitzky_golay": lambda options: options["window"] // 2,
-    "smoothing_spline": lambda options: 3,
-    "kalman": lambda options: 3,
-}
 
-# Fewest samples each method can work on at all, before trimming.
-_METHOD_MIN_SAMPLES = {
-    "finite_difference": lambda options: options["order"] + 1,
-    "savitzky_golay": lambda options: options["window"],
-    "smoothing_spline": lambda options: 5,
-    "kalman": lambda options: 5,
-}
+@dataclass(frozen=True)
+class DerivativeMethod:
+    """Everything about one derivative method, in one place.
+
+    Attributes
+    ----------
+    function : callable
+        ``function(t, x, **options) -> (x_smooth, x_dot)``.
+    options : tuple of Option
+    check : callable
+        ``check(**options)`` raises ConfigError for values out of range or inconsistent.
+    trim : callable
+        Samples to drop at each end, from the options (reasons in :data:`METHODS`' comments).
+    fewest : callable
+        Fewest samples the method can work on at all, from the options.
+    stream_half_width : callable or None
+        Neighbours on each side one derivative sample depends on; None for methods
+        that need the whole run and cannot be read in chunks.
+    """
+
+    name: str
+    function: object
+    options: tuple
+    check: object
+    trim: object
+    fewest: object
+    stream_half_width: object = None
+
+    def defaults(self):
+        return {o.name: o.default for o in self.options}
+
+
+# Trims are common practice, with these reasons: finite_difference: the ends use
+# one-sided stencils with larger error (order 2: 1 sample, order 4: 2); savitzky_golay:
+# the first and last window // 2 samples come from an off-centre fit, whose slope is the
+# noisiest; smoothing_spline: the natural end conditions (zero curvature) bias the
+# slope; kalman: the smoother has data on one side only near the ends.
+METHODS = {m.name: m for m in (
+    DerivativeMethod(
+        "finite_difference", finite_difference, (Option("order", "int", 2, choices=(2, 4)),),
+        _check_finite_difference_options, trim=lambda o: o["order"] // 2, fewest=lambda o: o["order"] + 1,
+        stream_half_width=lambda o: o["order"] // 2),
+    DerivativeMethod(
+        "savitzky_golay", savitzky_golay,
+        (Option("window", "int", 11, minimum=3, odd=True), Option("order", "int", 3, minimum=1)),
+        _check_savitzky_golay_options, trim=lambda o: o["window"] // 2, fewest=lambda o: o["window"],
+        stream_half_width=lambda o: o["window"] // 2),
+    DerivativeMethod(
+        "smoothing_spline", smoothing_spline, (Option("lam", "float", None, minimum=0.0, nullable=True),),
+        _check_smoothing_spline_options, trim=lambda o: 3, fewest=lambda o: 5),
+    DerivativeMethod(
+        "kalman", kalman, (Option("noise_ratio", "float", None, minimum=0.0, nullable=True),),
+        _check_kalman_options, trim=lambda o: 3, fewest=lambda o: 5),
+)}
+
+#: name -> function, for callers that only differentiate.
+DERIVATIVE_METHODS = {name: m.function for name, m in METHODS.items()}
 
 
 def _resolved_options(method, options):
     """Check ``method`` and ``options`` and return the options with defaults filled in."""
-    if method not in DERIVATIVE_METHODS:
-        accepted = ", ".join(repr(name) for name in DERIVATIVE_METHODS)
+    if method not in METHODS:
+        accepted = ", ".join(repr(name) for name in METHODS)
         raise ConfigError(
             f"[derivatives].method must be one of {accepted}. Got {method!r}."
         )
-    parameters = inspect.signature(DERIVATIVE_METHODS[method]).parameters
-    accepted_options = [
-        name for name, p in parameters.items() if p.kind is p.KEYWORD_ONLY
-    ]
+    record = METHODS[method]
+    accepted_options = [o.name for o in record.options]
     unknown = sorted(set(options) - set(accepted_options))
     if unknown:
         raise ConfigError(
             f"[derivatives] has options {unknown} that method {method!r} does "
             f"not accept. Accepted: {accepted_options}."
         )
-    resolved = {name: parameters[name].default for name in accepted_options}
+    resolved = record.defaults()
     resolved.update(options)
-    _OPTION_CHECKS[method](**resolved)
+    record.check(**resolved)
     return resolved
 
 
@@ -426,7 +458,7 @@ def default_trim(method, options):
     Parameters
     ----------
     method : str
-        A key of :data:`DERIVATIVE_METHODS`.
+        A key of :data:`METHODS`.
     options : dict
         The method's keyword options as configured; missing ones take the
         function's defaults.
@@ -434,36 +466,23 @@ def default_trim(method, options):
     Returns
     -------
     int
-        Number of samples to drop at the start and, again, at the end; see
-        :data:`DEFAULT_TRIM` for the reasons.
+        Number of samples to drop at the start and, again, at the end (reasons
+        beside :data:`METHODS`).
 
     Raises
     ------
     ConfigError
         If the method is unknown or an option is unknown or out of range.
     """
-    return int(DEFAULT_TRIM[method](_resolved_options(method, options)))
+    return int(METHODS[method].trim(_resolved_options(method, options)))
 
 
 def min_samples(method, options):
     """Fewest samples a run needs for ``method`` with ``options``.
 
-    The larger of what the method needs to run at all (finite_difference:
-    3, or 5 for order 4; savitzky_golay: ``window``; smoothing_spline and
-    kalman: 5) and ``2 * default_trim + MIN_SAMPLES_AFTER_TRIM``, so that a
-    few samples are left after trimming both ends.
-
-    Parameters
-    ----------
-    method : str
-        A key of :data:`DERIVATIVE_METHODS`.
-    options : dict
-        The method's keyword options as configured; missing ones take the
-        function's defaults.
-
-    Returns
-    -------
-    int
+    The larger of what the method needs to run at all and
+    ``2 * default_trim + MIN_SAMPLES_AFTER_TRIM``, so that a few samples are left
+    after trimming both ends.
 
     Raises
     ------
@@ -471,5 +490,12 @@ def min_samples(method, options):
         If the method is unknown or an option is unknown or out of range.
     """
     resolved = _resolved_options(method, options)
-    trim = DEFAULT_TRIM[method](resolved)
-    return int(max(_METHOD_MIN_SAMPLES[method](resolved), 2 * trim + MIN_SAMPLES_AFTER_TRIM))
+    record = METHODS[method]
+    return int(max(record.fewest(resolved), 2 * record.trim(resolved) + MIN_SAMPLES_AFTER_TRIM))
+
+
+def stream_half_width(method, options):
+    """Neighbours on each side of a derivative sample; None if the method cannot stream."""
+    record = METHODS[method]
+    return None if record.stream_half_width is None else int(record.stream_half_width(
+        _resolved_options(method, options)))

@@ -9,6 +9,7 @@ is ever handed to ``eval`` or ``exec``.
 from __future__ import annotations
 
 import ast
+import unicodedata
 from dataclasses import dataclass
 
 import numpy as np
@@ -83,7 +84,8 @@ def parse_expression(text, allowed_names, *, where="expression"):
     """
     if not isinstance(text, str) or not text.strip():
         raise ExpressionError(f"{where}: expected a non-empty expression string. Got {text!r}.")
-    stripped = text.strip()
+    # NFKC, as Python's parser reads identifiers: "Ω" (ohm sign) and "Ω" (omega) are one name.
+    stripped = unicodedata.normalize("NFKC", text).strip()
     if len(stripped) > MAX_LENGTH:
         raise ExpressionError(f"{where}: the expression is {len(stripped)} characters long; at most "
                               f"{MAX_LENGTH} are accepted. Split it into several terms.")

@@ -16,13 +16,19 @@ from scipy.integrate import solve_ivp
 DIVERGED = "left the bounded region at t={t:.6g} (state {state!r})"
 NOT_FINITE = "its right-hand side is not finite at t={t:.6g}"
 TIME_LIMIT = "stopped at t={t:.6g}: the simulation took longer than the time limit of {limit:g} s"
+TOO_MANY_STEPS = ("stopped at t={t:.6g}: the solver evaluated the model {count} times without finishing "
+                  "(a diverging or extremely stiff model)")
+#: Right-hand-side evaluations allowed per call: a fixed allowance plus this many per sample;
+#: a well-posed model needs a few per sample, one whose steps shrink to nothing needs millions.
+EVALUATIONS_PER_SAMPLE = 200
+EVALUATIONS_BASE = 20000
 #: Default wall-clock limit of one solver call, seconds ([compute].simulation_time_limit).
 DEFAULT_TIME_LIMIT = 60.0
 
 
-class _TimeLimit(Exception):
-    def __init__(self, at):
-        self.at = at
+class _Stopped(Exception):
+    def __init__(self, message):
+        self.message = message
 
 
 @dataclass(frozen=True)
@@ -193,6 +199,8 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
     atol_state = np.broadcast_to(np.asarray(atol, dtype=float), (n_states,))
     active, start, message = np.arange(n_members), t[0], ""
     deadline = time.monotonic() + time_limit
+    budget = EVALUATIONS_BASE + EVALUATIONS_PER_SAMPLE * len(t)
+    evaluations = [0]
     first_bad = np.full(n_members, np.inf)  # first time each member's rhs was not finite
     if limits is not None:
         # A member that starts outside the region can never cross into it: stop it at once.
@@ -206,8 +214,11 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
         members = active.copy()
 
         def fun(s, flat):
-            if time.monotonic() > deadline:
-                raise _TimeLimit(s)
+            evaluations[0] += 1
+            if evaluations[0] > budget:
+                raise _Stopped(TOO_MANY_STEPS.format(t=s, count=budget))
+            if evaluations[0] % 64 == 0 and time.monotonic() > deadline:
+                raise _Stopped(TIME_LIMIT.format(t=s, limit=time_limit))
             dx = rhs(flat.reshape(len(members), n_states), u_of(s), members)
             bad = ~np.isfinite(dx).all(axis=1)
             if bad.any():
@@ -232,10 +243,11 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
             with np.errstate(all="ignore"):
                 sol = solve_ivp(fun, (start, t[-1]), y, method=method, t_eval=pending, rtol=rtol,
                                 atol=np.tile(atol_state, len(members)), events=events)
-        except _TimeLimit as stop:
-            message = TIME_LIMIT.format(t=stop.at, limit=time_limit)
-            stopped_at[members] = stop.at
-            x[np.ix_(members, np.flatnonzero(t >= stop.at))] = np.nan
+        except _Stopped as stop:
+            # The samples reached before the stop are lost with the aborted call.
+            message = stop.message
+            stopped_at[members] = start
+            x[np.ix_(members, np.flatnonzero(t >= start))] = np.nan
             break
         # solve_ivp returns (n_states * n_active, n_points), a list when it reached no
         # requested time; ours is (member, time, state).

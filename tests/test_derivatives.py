@@ -165,7 +165,7 @@ def test_kalman_alpha_is_the_packages_alpha_in_samples(alpha):
     step = 0.1
     t = np.arange(50) * step
     y = np.sin(t) + 0.05 * rng.standard_normal(t.size)
-    x_smooth, x_dot = kalman(t, y[:, None], alpha=alpha)
+    x_smooth, x_dot = kalman(t, y[:, None], noise_ratio=alpha)
     reference = derivative.Kalman(alpha=(1.0 if alpha is None else alpha) * step**3)
     assert_allclose(x_dot[:, 0], reference.d(y, t), atol=1e-8)
     assert_allclose(x_smooth[:, 0], reference.x(y, t), atol=1e-9)
@@ -177,7 +177,7 @@ def test_kalman_equals_the_smoothing_spline_with_lam_equal_to_alpha():
     rng = np.random.default_rng(14)
     t = jittered_grid(60, 5.0, seed=14)
     x = np.column_stack([np.sin(t), t**2]) + 0.05 * rng.standard_normal((60, 2))
-    kalman_smooth, kalman_dot = kalman(t, x, alpha=2.0)
+    kalman_smooth, kalman_dot = kalman(t, x, noise_ratio=2.0)
     spline_smooth, spline_dot = smoothing_spline(t, x, lam=2.0)
     assert_allclose(kalman_smooth, spline_smooth, atol=1e-8)
     assert_allclose(kalman_dot, spline_dot, atol=1e-7)
@@ -278,7 +278,7 @@ def test_tiny_clock_jitter_is_accepted_by_savitzky_golay():
         (lambda t, x: savitzky_golay(t, x, order=0), r"\[derivatives\]\.order must be an int >= 1 .* Got 0\."),
         (lambda t, x: savitzky_golay(t, x, window=7.0), r"\[derivatives\]\.window must be an odd int >= 3\. Got 7\.0\."),
         (lambda t, x: smoothing_spline(t, x, lam=-1.0), r"\[derivatives\]\.lam must be a number >= 0.* Got -1\.0\."),
-        (lambda t, x: kalman(t, x, alpha=0.0), r"\[derivatives\]\.alpha must be a number > 0.* Got 0\.0\."),
+        (lambda t, x: kalman(t, x, noise_ratio=0.0), r"\[derivatives\]\.noise_ratio must be a number > 0.* Got 0\.0\."),
     ],
 )
 def test_bad_options_name_the_key_and_the_value(call, match):
