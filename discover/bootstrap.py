@@ -29,7 +29,6 @@ SUB_PER_BLOCK = 4
 MAX_SUB_BLOCKS = 4000
 #: Whole runs are resampled under resample = "auto" from this many training runs on.
 MIN_RUNS_FOR_RUN_RESAMPLING = 10
-RESAMPLE_SCHEMES = ("auto", "blocks", "runs", "rows")
 
 
 def correlation_length(series):
@@ -150,42 +149,25 @@ def _fit_batch_task(batch, n_terms, thresholds, ridge, max_iter):
     return _fit_batch(grams_of_members, counts_of_members, n_terms, available, thresholds, ridge, max_iter)
 
 
-def fit_ensemble(block_set, weights, available, thresholds, *, ridge, max_iter, n_jobs=1, progress=False,
-                 client=None):
+def fit_ensemble(block_set, weights, available, thresholds, *, ridge, max_iter, executor, progress=False):
     """Fit every member from its weighted sum of block Grams.
 
-    Members are fitted in batches (one joblib task per batch, or one Dask task per batch
-    when ``client`` is a ``dask.distributed.Client``) and collected in member order, so
-    the result does not depend on ``n_jobs`` or the number of workers.
+    Members are fitted in batches, one task each on the ``executor``
+    (:class:`discover.compute.Executor`: this process, joblib or Dask) and collected
+    in member order, so the result does not depend on where they ran.
 
     Returns
     -------
     ndarray of shape (n_members, n_terms, n_targets)
     """
-    from joblib import Parallel, delayed
-    from tqdm.auto import tqdm
-
     n_members = len(weights)
     batches = np.array_split(np.arange(n_members), min(n_members, 20))
     # The members' Grams in one product here, so that every way of fitting them sees the same bits.
     all_grams, all_counts = member_grams(block_set.grams, weights), weights @ block_set.counts
-    if client is not None:
-        from .compute import map_in_order
-
-        items = [(all_grams[b], all_counts[b], available[b]) for b in batches]
-        done = map_in_order(client, _fit_batch_task, items, block_set.n_terms, thresholds, ridge, max_iter)
-        return np.array([coef for batch in done for coef in batch])
-    tasks = (
-        delayed(_fit_batch)(all_grams[b], all_counts[b], block_set.n_terms, available[b], thresholds, ridge, max_iter)
-        for b in batches
-    )
-    results = []
-    # disable=None: a bar on a terminal only, none in logs.
-    with tqdm(total=n_members, desc="bootstrap members", disable=None if progress else True, leave=False) as bar:
-        for batch in Parallel(n_jobs=n_jobs, return_as="generator")(tasks):
-            results.extend(batch)
-            bar.update(len(batch))
-    return np.array(results)
+    items = [(all_grams[b], all_counts[b], available[b]) for b in batches]
+    done = executor.map(_fit_batch_task, items, block_set.n_terms, thresholds, ridge, max_iter,
+                        progress="bootstrap members" if progress else None, sizes=[len(b) for b in batches])
+    return np.array([coef for batch in done for coef in batch])
 
 
 def row_weights_ensemble(pieces, n_members, rng):
@@ -259,10 +241,11 @@ def final_coefficients(summary, total, count, n_terms, *, inclusion_min, method)
 
     Terms with inclusion probability >= inclusion_min are kept. ``"refit"`` fits them by
     least squares on all training rows (so with clean data the model equals the single
-    fit); ``"bragg"`` takes the median over all members ("bragging", Fasel et al. 2022).
+    fit); ``"member_median"`` takes the median over all members, zeros included (the
+    median aggregation of Fasel et al. 2022).
     """
     support = summary.inclusion_probability >= inclusion_min
-    if method == "bragg":
+    if method == "member_median":
         return np.where(support, np.nan_to_num(summary.median_all), 0.0)
     scale = Scale.from_gram(total, count, n_terms)
     g, b = scaled_problem(total, count, n_terms, scale)
@@ -347,3 +330,92 @@ def band_coverage(measured, low, high):
     """Share of measured samples inside the band, per state."""
     inside = (measured >= low) & (measured <= high)
     return inside.mean(axis=0)
+
+
+# --------------------------------------------------------------------------- the ensemble stage
+
+
+@dataclass(frozen=True)
+class Ensemble:
+    """Bootstrap members and their summary.
+
+    Attributes
+    ----------
+    coef : ndarray of shape (n_members, n_terms, n_states)
+    available : bool ndarray of shape (n_members, n_terms)
+        The terms each member could choose from (``library_fraction`` < 1).
+    summary : EnsembleSummary
+    scheme : str
+        The resampling used ("blocks", "runs" or "rows").
+    block_length : int or None
+        Samples per resampled block (block scheme only).
+    weights : ndarray of shape (n_members, n_blocks) or None
+    """
+
+    coef: np.ndarray
+    available: np.ndarray
+    summary: EnsembleSummary
+    scheme: str
+    block_length: int | None
+    weights: np.ndarray | None
+
+
+def run_ensemble(boot, selection, seed, gram_blocks, thresholds, executor, *, progress=False):
+    """Fit the bootstrap members at the selected thresholds.
+
+    Parameters
+    ----------
+    boot, selection : the ``[bootstrap]`` and ``[selection]`` settings
+    seed : int
+        The config's seed; the members' draws are the only use of this stream.
+    gram_blocks : discover.grams.GramBlocks
+    thresholds : ndarray of shape (n_states,)
+    executor : discover.compute.Executor
+    """
+    blocks = gram_blocks.blocks
+    rng = np.random.default_rng(seed)
+    scheme = resolve_scheme(boot.resample, len(np.unique(blocks.runs)))
+    n, k = boot.members, blocks.n_terms
+    weights = None
+    if scheme == "rows":
+        grams, counts = row_weights_ensemble(gram_blocks.rows, n, rng)
+        available = library_masks(n, k, boot.library_fraction, rng)
+        coef = np.array([fit_member(g, c, k, a, thresholds, selection.ridge, selection.max_iter)
+                         for g, c, a in zip(grams, counts, available)])
+    else:
+        weights = member_weights(blocks.runs, n, scheme, rng)
+        available = library_masks(n, k, boot.library_fraction, rng)
+        coef = fit_ensemble(blocks, weights, available, thresholds, ridge=selection.ridge,
+                            max_iter=selection.max_iter, executor=executor, progress=progress)
+    summary = summarize(coef, available, boot.level)
+    block_length = gram_blocks.plan.block_length if scheme == "blocks" else None
+    return Ensemble(coef, available, summary, scheme, block_length, weights)
+
+
+def ensemble_model(boot, single, ensemble, blocks):
+    """The model of the ensemble: the terms kept often enough, with their statistics."""
+    from .model import Model
+
+    summary = ensemble.summary
+    total, count = blocks.total()
+    coef = final_coefficients(summary, total, count, len(single.terms), inclusion_min=boot.inclusion_min,
+                              method=boot.coefficients)
+    stats = {
+        "inclusion_probability": summary.inclusion_probability,
+        "coefficient_median": summary.median_kept,
+        "coefficient_low": summary.low_kept,
+        "coefficient_high": summary.high_kept,
+    }
+    info = dict(single.info)
+    info["ensemble"] = {
+        "members": int(boot.members),
+        "resample": ensemble.scheme,
+        "block_length": ensemble.block_length,
+        "library_fraction": boot.library_fraction,
+        "inclusion_min": boot.inclusion_min,
+        "coefficients": boot.coefficients,
+        "interval_level": boot.level,
+        "interval_over": "members that keep the term",
+        "interval_meaning": "the spread of the bootstrap members' coefficients, not a confidence interval",
+    }
+    return Model(single.state_names, single.input_names, single.terms, coef, stats, info)

@@ -83,17 +83,16 @@ def _run(args, session):
     from .pipeline import run
     from .report import summary
 
-    config = load_config(args.config)
-    output = config["output"]
-    target = args.out if args.out else default_output_dir(output["dir"], config["_source"], config["_base"])
-    inputs = input_files(config) + resolve_files(config["data"]["files"], config["_base"], config["_source"])
+    settings = load_config(args.config)
+    target = args.out if args.out else default_output_dir(settings.output.dir, settings.source, settings.base)
+    inputs = input_files(settings) + resolve_files(settings.data.files, settings.base, settings.source)
     # Claimed before the computation: a target that cannot be written fails in one line, at once.
     with OutputClaim(target, force=args.force, inputs=inputs) as claim:
         session["claim"] = claim
-        result = run(config, progress=True)
-        result.output_dir = claim.publish(lambda folder: write_files(result, folder))
+        result = run(settings, progress=True)
+        written = claim.publish(lambda folder: write_files(result, folder))
     print(summary(result))
-    print(f"Output written to {result.output_dir}")
+    print(f"Output written to {written}")
 
 
 def _rank(args, session):
@@ -102,8 +101,8 @@ def _rank(args, session):
     from pathlib import Path
 
     from .exceptions import OutputError
-    from .pipeline import rank_more
     from .report import ranking_lines
+    from .rerank import rank_more
 
     target = Path(args.save) if args.save else Path(args.out_dir) / "ranking_updated.csv"
     if not target.parent.is_dir():

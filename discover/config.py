@@ -12,12 +12,13 @@ Paths inside a config file are relative to the folder of that file.
 from __future__ import annotations
 
 import difflib
-import inspect
 import math
 import os
 import sys
 import unicodedata
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, fields, make_dataclass
+from types import MappingProxyType
 from pathlib import Path
 
 if sys.version_info >= (3, 11):
@@ -25,7 +26,7 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover
     import tomli as tomllib
 
-from .derivatives import DERIVATIVE_METHODS, default_trim
+from .derivatives import METHODS, default_trim
 from .exceptions import ConfigError
 
 from .simulate import SOLVERS as SIMULATION_METHODS
@@ -67,7 +68,7 @@ SCHEMA = {
         "chunk_rows": Key("int", None, minimum=100, nullable=True),
     },
     "derivatives": {
-        "method": Key("str", "savitzky_golay", choices=tuple(DERIVATIVE_METHODS)),
+        "method": Key("str", "savitzky_golay", choices=tuple(METHODS)),
         "trim": Key("int", None, minimum=0, nullable=True),
         # Further keys are the keyword-only options of the chosen method (see below).
     },
@@ -100,7 +101,9 @@ SCHEMA = {
         "block_length": Key("int", None, minimum=4, nullable=True),
         "library_fraction": Key("float", 1.0, minimum=0.05, maximum=1.0),
         "inclusion_min": Key("float", 0.5, minimum=0.0, maximum=1.0),
-        "coefficients": Key("str", "refit", choices=("refit", "bragg")),
+        # The kept terms' coefficients: a least-squares refit on all training data, or the
+        # median over all members (zeros of members that drop the term included).
+        "coefficients": Key("str", "refit", choices=("refit", "member_median")),
         "level": Key("float", 0.9, minimum=0.5, maximum=0.999),
         "n_jobs": Key("int", 1, minimum=-1),
         "bands": Key("bool", True),
@@ -145,21 +148,9 @@ SCHEMA = {
 }
 
 
-def method_options(method):
-    """Keyword-only options of a derivative method, with their defaults."""
-    signature = inspect.signature(DERIVATIVE_METHODS[method])
-    return {
-        name: p.default
-        for name, p in signature.parameters.items()
-        if p.kind is inspect.Parameter.KEYWORD_ONLY
-    }
-
-
-def derivative_options(config):
-    """The chosen derivative method's options from an effective config (method, trim and
-    values filled in during a run left out)."""
-    return {k: v for k, v in config["derivatives"].items()
-            if k not in ("method", "trim") and not k.endswith("_resolved")}
+def derivative_options(table):
+    """The method options of an effective ``[derivatives]`` table (a dict during validation)."""
+    return {k: v for k, v in table.items() if k not in ("method", "trim")}
 
 
 def load_config(source):
@@ -167,10 +158,12 @@ def load_config(source):
 
     Returns
     -------
-    dict
-        The effective config: every section and key, with ``"_source"`` (where it
-        came from, for messages) and ``"_base"`` (folder that relative paths start from).
+    Settings
+        Every section and key, frozen; ``source`` says where it came from (for
+        messages) and ``base`` the folder relative paths start from.
     """
+    if isinstance(source, Settings):
+        return source
     if isinstance(source, dict):
         raw, where, base = source, "config", Path.cwd()
     else:
@@ -191,13 +184,16 @@ def load_config(source):
             raise ConfigError(f"{path}: not valid TOML: {err}.") from None
         except RecursionError:
             raise ConfigError(f"{path}: not valid TOML: nested too deeply.") from None
-    config = validate(raw, where)
-    config["_source"], config["_base"] = where, str(base)
-    return config
+    return validate(raw, where, str(base))
 
 
-def validate(raw, where="config"):
-    """Validate a raw config mapping; return the effective config (a new dict)."""
+def validate(raw, where="config", base="."):
+    """Validate a raw config mapping; return its frozen :class:`Settings`."""
+    return freeze(_effective(raw, where), where, base)
+
+
+def _effective(raw, where):
+    """Validate a raw config mapping; return the effective config as a new dict."""
     if not isinstance(raw, dict):
         raise ConfigError(f"{where}: a config must be a table of sections. Got {type(raw).__name__}.")
     sections = [name for name in SCHEMA if name]
@@ -209,11 +205,19 @@ def validate(raw, where="config"):
             _unknown(where, "", name, sections + top_keys)
         if not isinstance(value, dict):
             raise ConfigError(f"{where}: [{name}] must be a table (a section). Got {value!r}.")
-    effective = {}
+    effective, notes = {}, []
     for key, spec in SCHEMA[""].items():
         effective[key] = _check_value(where, "", key, spec, raw.get(key, spec.default))
     for name in sections:
         table = dict(raw.get(name, {}))
+        for (section, old), (new, note) in DEPRECATED.items():
+            if section == name and old in table:
+                table.setdefault(new, table.pop(old))
+                notes.append(f"{note}; please update the config.")
+        for (section, key, old), (new, note) in DEPRECATED_VALUES.items():
+            if section == name and table.get(key) == old:
+                table[key] = new
+                notes.append(f"{note}; please update the config.")
         schema = dict(SCHEMA[name])
         if name == "derivatives":
             schema.update(_derivative_keys(where, table))
@@ -228,6 +232,7 @@ def validate(raw, where="config"):
             effective[name][key] = _check_value(where, name, key, spec, value)
     _normalize_names(effective["data"])
     _check_relations(where, effective)
+    effective["_notes"] = notes
     return effective
 
 
@@ -241,18 +246,26 @@ def _normalize_names(data):
 
 
 def _derivative_keys(where, table):
+    """Keys of the chosen method's options, from its record in derivatives.METHODS."""
     method = table.get("method", SCHEMA["derivatives"]["method"].default)
-    if method not in DERIVATIVE_METHODS:
+    if method not in METHODS:
         _check_value(where, "derivatives", "method", SCHEMA["derivatives"]["method"], method)
     keys = {}
-    for option, default in method_options(method).items():
-        if isinstance(default, bool):
-            keys[option] = Key("bool", default)
-        elif isinstance(default, int):
-            keys[option] = Key("int", default, minimum=0, odd=(option == "window"))
-        else:
-            keys[option] = Key("float", default, minimum=0.0, nullable=True)
+    for option in METHODS[method].options:
+        keys[option.name] = Key(option.kind, option.default, choices=option.choices, minimum=option.minimum,
+                                nullable=option.nullable, odd=option.odd)
     return keys
+
+
+#: Old keys still read, with the new name and a note for the run's warnings (one release).
+DEPRECATED = {
+    ("derivatives", "alpha"): ("noise_ratio", "[derivatives].alpha is now [derivatives].noise_ratio (same "
+                                              "meaning: the ratio in samples, not the derivative package's alpha)"),
+}
+DEPRECATED_VALUES = {
+    ("bootstrap", "coefficients", "bragg"): ("member_median", "[bootstrap].coefficients = \"bragg\" is now "
+                                                              "\"member_median\""),
+}
 
 
 def _unknown(where, section, key, valid):
@@ -369,11 +382,10 @@ def _check_relations(where, config):
         raise ConfigError(f"{where}: [selection].thresholds must list at least one threshold.")
     deriv = config["derivatives"]
     if data["chunk_rows"] is not None:
-        from .stream import STREAMING_METHODS
-
+        streaming = [name for name, record in METHODS.items() if record.stream_half_width is not None]
         problems = []
-        if deriv["method"] not in STREAMING_METHODS:
-            problems.append(f"[derivatives].method must be one of {', '.join(map(repr, STREAMING_METHODS))} "
+        if deriv["method"] not in streaming:
+            problems.append(f"[derivatives].method must be one of {', '.join(map(repr, streaming))} "
                             f"(local methods; got {deriv['method']!r})")
         if data["missing"] != "refuse":
             problems.append(f"[data].missing must be 'refuse' (got {data['missing']!r})")
@@ -385,7 +397,7 @@ def _check_relations(where, config):
         if problems:
             raise ConfigError(f"{where}: with [data].chunk_rows set, " + "; ".join(problems) + ".")
     try:
-        default_trim(deriv["method"], derivative_options(config))
+        default_trim(deriv["method"], derivative_options(deriv))
     except ConfigError as err:
         raise ConfigError(f"{where}: {err}") from None
     from .expressions import parse_expression
@@ -405,40 +417,31 @@ def _check_relations(where, config):
                 )
 
 
-def threshold_grid(selection):
-    """The thresholds to cross-validate, ascending."""
-    import numpy as np
-
-    if selection["thresholds"] is not None:
-        return np.unique(np.asarray(selection["thresholds"], dtype=float))
-    return np.geomspace(
-        selection["threshold_min"], selection["threshold_max"], selection["threshold_count"]
-    )
-
-
-def to_toml(config, *, absolute_paths=False):
-    """Write the effective config as TOML (the subset of TOML this schema uses).
+def to_toml(settings, *, absolute_paths=False):
+    """Write the settings as TOML (the subset of TOML this schema uses); it validates again as is.
 
     With ``absolute_paths`` the data files and the output folder are written as
     absolute paths, so that the file runs again as it is from wherever it lies.
     """
+    config = settings.as_dict()
     if absolute_paths:
-        base = Path(config["_base"])
-        config = {**config, "data": dict(config["data"]), "output": dict(config["output"])}
-        config["data"]["files"] = [str(Path(os.path.normpath(base / f))) for f in config["data"]["files"]]
-        if config["output"]["dir"] is not None:
-            config["output"]["dir"] = str(Path(os.path.normpath(base / config["output"]["dir"])))
+        base = Path(settings.base)
+
+        def absolute(path):
+            return None if path is None else str(Path(os.path.normpath(base / path)))
+
+        config = {**config,
+                  "data": {**config["data"], "files": [absolute(f) for f in settings.data.files]},
+                  "output": {**config["output"], "dir": absolute(settings.output.dir)}}
     lines = []
     for key, value in config.items():
-        if not key.startswith("_") and not isinstance(value, dict) and value is not None:
+        if not isinstance(value, dict) and value is not None:
             lines.append(f"{key} = {_toml_value(value)}")
     for section, table in config.items():
-        if section.startswith("_") or not isinstance(table, dict):
+        if not isinstance(table, dict):
             continue
         lines.append(f"\n[{section}]")
         for key, value in table.items():
-            if key.endswith("_resolved"):
-                continue  # filled in during the run, not a config key
             if value is None:
                 lines.append(f"# {key} is unset")
             else:
@@ -457,9 +460,9 @@ def _toml_value(value):
     if isinstance(value, str):
         return '"' + "".join(_TOML_ESCAPES.get(c) or (f"\\u{ord(c):04x}" if ord(c) < 32 or ord(c) == 127 else c)
                              for c in value) + '"'
-    if isinstance(value, list):
+    if isinstance(value, (list, tuple)):
         return "[" + ", ".join(_toml_value(v) for v in value) + "]"
-    if isinstance(value, dict):
+    if isinstance(value, Mapping):
         items = [(k, v) for k, v in value.items() if v is not None]
         return "{" + ", ".join(f"{_toml_value(k)} = {_toml_value(v)}" for k, v in items) + "}"
     raise TypeError(value)
@@ -514,3 +517,95 @@ def _check_ranking(where, config):
                                   f"e.g. {data['states'][0]} = [\"...\"].")
             checked.append(table)
         ranking[kind] = checked
+
+
+# --------------------------------------------------------------------------- frozen settings
+
+_TYPES = {"int": int, "float": float, "bool": bool, "str": str, "str_list": tuple, "float_list": tuple,
+          "table": Mapping, "table_list": tuple}
+
+
+def _section_class(name, keys):
+    return make_dataclass(f"{name.title()}Settings", [(key, _TYPES[spec.kind] | None) for key, spec in keys.items()],
+                          frozen=True)
+
+
+#: One frozen dataclass per section, built from SCHEMA, so the keys are declared once.
+SECTION_CLASSES = {name: _section_class(name, keys) for name, keys in SCHEMA.items() if name and name != "derivatives"}
+
+
+@dataclass(frozen=True)
+class DerivativeSettings:
+    """``[derivatives]``: the method, the trim asked for (None: the method's), and its options."""
+
+    method: str
+    trim: int | None
+    options: Mapping
+
+
+@dataclass(frozen=True)
+class Settings:
+    """A validated config, frozen. Values resolved during a run live on the stage results."""
+
+    seed: int
+    data: object
+    derivatives: DerivativeSettings
+    terms: object
+    selection: object
+    bootstrap: object
+    simulation: object
+    ranking: object
+    compute: object
+    output: object
+    source: str = "config"
+    base: str = "."
+    notes: tuple = ()
+
+    def as_dict(self):
+        """A plain nested dict, as :func:`validate` accepts it."""
+        out = {"seed": self.seed}
+        for f in fields(self):
+            value = getattr(self, f.name)
+            if f.name == "derivatives":
+                out["derivatives"] = {"method": value.method, "trim": value.trim, **_thaw(value.options)}
+            elif f.name in SECTION_CLASSES:
+                out[f.name] = {g.name: _thaw(getattr(value, g.name)) for g in fields(value)}
+        return out
+
+    def library_table(self):
+        """``[terms]`` as a mapping (libraries of [[ranking.libraries]] have the same keys)."""
+        return {f.name: getattr(self.terms, f.name) for f in fields(self.terms)}
+
+
+def _freeze(value):
+    if isinstance(value, list):
+        return tuple(_freeze(v) for v in value)
+    if isinstance(value, dict):
+        return MappingProxyType({k: _freeze(v) for k, v in value.items()})
+    return value
+
+
+def _thaw(value):
+    if isinstance(value, tuple):
+        return [_thaw(v) for v in value]
+    if isinstance(value, Mapping):
+        return {k: _thaw(v) for k, v in value.items()}
+    return value
+
+
+def freeze(effective, source="config", base="."):
+    """The :class:`Settings` of an effective config dict from :func:`validate`."""
+    sections = {}
+    for name, cls in SECTION_CLASSES.items():
+        sections[name] = cls(**{k: _freeze(v) for k, v in effective[name].items()})
+    deriv = effective["derivatives"]
+    derivatives = DerivativeSettings(deriv["method"], deriv["trim"], MappingProxyType(derivative_options(deriv)))
+    return Settings(effective["seed"], derivatives=derivatives, source=source, base=str(base),
+                    notes=tuple(effective.get("_notes", ())), **sections)
+
+
+def with_hypotheses(settings, hypotheses_raw, where):
+    """The settings with other [[ranking.hypotheses]], checked (for ``discover rank``)."""
+    raw = settings.as_dict()
+    raw["ranking"]["hypotheses"] = hypotheses_raw
+    return validate(raw, where, settings.base)

@@ -346,27 +346,69 @@ def split_held_out(runs, held_out, held_out_count, seed, where):
     return train, test
 
 
-def load_dataset(config, *, lazy_training=False):
-    """Load the runs a config names; return ``(training, held_out)`` Datasets.
+def load_dataset(settings, *, lazy_training=False):
+    """Load the runs the settings name; return ``(training, held_out)`` Datasets.
 
     With ``lazy_training`` the training runs are only named (their ``source`` is set,
     their arrays are empty): discover.stream reads them chunk by chunk.
     """
-    data, where = config["data"], config["_source"]
-    states, inputs = tuple(data["states"]), tuple(data["inputs"])
-    check_names((data["time"],) + states + inputs, where)
-    paths = resolve_files(data["files"], config["_base"], where)
+    data, where = settings.data, settings.source
+    states, inputs = tuple(data.states), tuple(data.inputs)
+    check_names((data.time,) + states + inputs, where)
+    paths = resolve_files(data.files, settings.base, where)
     names = [path.stem for path in paths]
     repeated = sorted({n for n in names if names.count(n) > 1})
     if repeated:
         raise DataError(f"{where}: several files share the run name(s) {repeated}; rename the files.")
     empty = np.empty((0, 0))
     placeholders = [Run(path.stem, np.empty(0), empty, empty, str(path)) for path in paths]
-    train, test = split_held_out(placeholders, data["held_out"], data["held_out_count"], config["seed"], where)
+    train, test = split_held_out(placeholders, data.held_out, data.held_out_count, settings.seed, where)
 
     def load(run):
-        return load_run(Path(run.source), time=data["time"], states=states, inputs=inputs,
-                        rename=data["rename"], missing=data["missing"], max_gap=data["max_gap"])
+        return load_run(Path(run.source), time=data.time, states=states, inputs=inputs,
+                        rename=data.rename, missing=data.missing, max_gap=data.max_gap)
 
     train = train if lazy_training else tuple(load(run) for run in train)
     return Dataset(states, inputs, train), Dataset(states, inputs, tuple(load(run) for run in test))
+
+
+# --------------------------------------------------------------------------- checks of the loaded runs
+
+SHORT_RUN = 50  # fewer usable samples than this in a run earns a warning
+
+
+def frozen(low, high):
+    """True where a channel does not move, relative to its own magnitude (not its units)."""
+    return (high - low) <= 1e-12 * np.maximum(np.abs(low), np.abs(high))
+
+
+def check_excitation(training, where):
+    """A state or input that never moves in any training run cannot be identified."""
+    ranges = [run.ranges() for run in training.runs]
+    for kind, names, low, high in (("state", training.state_names, 0, 1), ("input", training.input_names, 2, 3)):
+        for j, name in enumerate(names):
+            if all(frozen(r[low][j], r[high][j]) for r in ranges):
+                raise DataError(
+                    f"{where}: {kind} {name!r} never moves in any training run (constant "
+                    f"{float(ranges[0][low][j])!r}); its effect cannot be identified. Remove it from "
+                    f"[data].{kind}s or add runs that excite it."
+                )
+
+
+def data_warnings(training, held_out):
+    """Channels frozen in a run, short runs, gap handling and date-time clocks, one line each."""
+    notes = []
+    for run in list(training.runs) + list(held_out.runs):
+        x_min, x_max, u_min, u_max = run.ranges()
+        for kind, names, low, high in (("state", training.state_names, x_min, x_max),
+                                       ("input", training.input_names, u_min, u_max)):
+            for j in np.flatnonzero(frozen(low, high)):
+                notes.append(f"{run.source}: {kind} {names[j]!r} never moves in this run (constant "
+                             f"{float(low[j])!r}); its effect cannot be identified from it.")
+        if run.time_note:
+            notes.append(f"{run.source}: {run.time_note}.")
+        if run.n_samples < SHORT_RUN:
+            notes.append(f"{run.source}: only {run.n_samples} samples; estimates from it are fragile.")
+        if run.touched:
+            notes.append(f"{run.source}: {run.touched} samples were dropped or interpolated by gap handling.")
+    return notes

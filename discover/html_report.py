@@ -267,7 +267,7 @@ def _ensemble_info(result):
 
 
 def _interval_level(result):
-    return _ensemble_info(result).get("interval_level", result.config["bootstrap"]["level"])
+    return _ensemble_info(result).get("interval_level", result.settings.bootstrap.level)
 
 
 def _equations(result):
@@ -281,7 +281,7 @@ def _equations(result):
         parts.append(_paragraph("The bootstrap ensemble was off ([bootstrap].members = 0): the terms have no "
                                 "inclusion probabilities or coefficient intervals.", "absent"))
     else:
-        members = _ensemble_info(result).get("members", result.config["bootstrap"]["members"])
+        members = _ensemble_info(result).get("members", result.settings.bootstrap.members)
         parts.append(_paragraph(
             f"Inclusion probability: the share of {members} bootstrap members that keep the term. "
             f"Interval: the central {100 * level:.0f} % of the coefficients of the members that keep it. "
@@ -334,10 +334,10 @@ def _held_out(result):
              _table(header, rows, caption="held-out fit", numeric=(2, 3, 4, 6, 7))]
     names = result.model.state_names
     for item in result.validation:
-        band = item["band"][1:] if "band" in item else None
+        band = (item.band.low, item.band.high) if item.band is not None else None
         what = "measured (grey), simulated (dashed)" + (", ensemble band (shaded)" if band is not None else "")
         parts.append(_figure(lambda item=item, band=band: plot_held_out(item, names, band=band),
-                             f"Held-out run {item['run']}: {what}."))
+                             f"Held-out run {item.run}: {what}."))
     return _section("held-out", "\n".join(parts))
 
 
@@ -395,14 +395,14 @@ def _cv(result):
 
 
 def _ranking(result):
-    table = result.ranking
-    if table is None:
+    if result.ranking is None:
         return _section("ranking", _paragraph("The ranking was off ([ranking].enabled = false).", "absent"))
+    table = result.ranking.table
     if not len(table):
         return _section("ranking", _paragraph("No candidate structure was scored.", "absent"))
     from .ranking import why_chosen
 
-    criterion = result.config["ranking"]["criterion"]
+    criterion = result.ranking.criterion
     columns = [("rank", "rank", str), ("candidate", "candidate", str), ("source", "source", str),
                ("n_terms", "terms", str), ("aicc", "AICc", _number), ("delta_aicc", "ΔAICc", lambda v: _number(v, 3)),
                ("akaike_weight", "weight", lambda v: _number(v, 2)), ("bic", "BIC", _number),
@@ -411,12 +411,12 @@ def _ranking(result):
     columns = [c for c in columns if c[0] in table.columns]
     rows = [[fmt(row[key]) for key, _, fmt in columns] for _, row in table.head(MAX_RANKING_ROWS).iterrows()]
     numeric = [k for k, (key, _, _) in enumerate(columns) if key not in ("candidate", "source", "support", "pareto")]
-    scored_on = "the held-out runs" if result.held_out.runs else "the training runs (none held out)"
+    scored_on = f"the {result.ranking.scored_on}"
     caption = f"{len(table)} candidate structures"
     if len(table) > MAX_RANKING_ROWS:
         caption += f" (first {MAX_RANKING_ROWS}; ranking.csv has all)"
     parts = [
-        _paragraph(why_chosen(table, criterion)),
+        _paragraph(why_chosen(table, criterion, result.ranking.scored_on)),
         _paragraph(f"Ordered by {criterion}. ΔAICc ≤ 2: substantial support; > 10: essentially none. "
                    f"The simulation error is the mean NRMSE of the free-run simulation on {scored_on}."),
         _table([label for _, label, _ in columns], rows, numeric=numeric, caption=caption),
@@ -424,9 +424,9 @@ def _ranking(result):
                                             "front joined, the best-ranked labelled #rank Δ=ΔAICc."),
     ]
     if result.validation and result.candidates:
-        top = result.config["ranking"]["top"]
+        top = result.settings.ranking.top
         parts.append(_figure(lambda: plot_top_candidates(result, top),
-                             f"The {top} best-ranked candidates on held-out run {result.validation[0]['run']}."))
+                             f"The {top} best-ranked candidates on held-out run {result.validation[0].run}."))
     return _section("ranking", "\n".join(parts))
 
 
@@ -449,11 +449,11 @@ def _data_overview(result):
         rows.append([run.name, role, str(len(run.t)), _number(run.t[-1] - run.t[0]), median, spread,
                      str(run.touched)])
     touched = sum(run.touched for run, _ in runs)
-    config = result.config["data"]
+    missing = result.settings.data.missing
     parts = [
         _paragraph(f"{len(runs)} runs, {sum(len(r.t) for r, _ in runs)} samples; states: "
                    f"{', '.join(training.state_names)}; inputs: {', '.join(training.input_names) or 'none'}. "
-                   f"Gap handling ([data].missing = {config['missing']!r}) touched {touched} samples."),
+                   f"Gap handling ([data].missing = {missing!r}) touched {touched} samples."),
         _table(["run", "role", "samples", "duration", "sampling step (median)", "step range",
                 "samples dropped or interpolated"], rows, caption="runs", numeric=(2, 3, 4, 6)),
     ]
@@ -469,14 +469,14 @@ def _data_overview(result):
 def _derivative_check(result):
     if not result.smoothed:
         return _section("derivative-check", _paragraph("No training run was smoothed.", "absent"))
-    smoothed = result.smoothed[0]
+    smoothed = result.smoothed.trimmed[0]
     raw = next((run for run in result.training.runs if run.name == smoothed.name), None)
-    section = result.config["derivatives"]
-    options = ", ".join(f"{k} = {v!r}" for k, v in section.items() if k not in ("method", "trim"))
+    section = result.settings.derivatives
+    options = ", ".join(f"{k} = {v!r}" for k, v in section.options.items())
     noise = (smoothed.x_raw - smoothed.x).std(axis=0)
     dropped = (len(raw.t) - len(smoothed.t)) // 2 if raw is not None else None
     parts = [
-        _paragraph(f"Method {section['method']!r}" + (f" ({options})" if options else "")
+        _paragraph(f"Method {section.method!r}" + (f" ({options})" if options else "")
                    + (f"; {dropped} samples dropped at each end of a run, where the estimate is unreliable."
                       if dropped is not None else ".")),
         _table(["state", "std of raw − smoothed (noise estimate)"],
@@ -503,7 +503,7 @@ def _inputs(result):
                classes={3: "path", 4: "hash"}),
         _table(["package", "version"], packages, caption="package versions"),
         "<h3>Config as run (every default filled in)</h3>",
-        f"<pre>{esc(to_toml(result.config))}</pre>",
+        f"<pre>{esc(to_toml(result.settings))}</pre>",
     ]
     return _section("inputs", "\n".join(parts))
 
@@ -519,7 +519,7 @@ def render_report(result):
     kept = int(np.count_nonzero(model.coef))
     lead = (f"dx/dt = f(x, u) for the states {', '.join(model.state_names)} with the inputs "
             f"{', '.join(model.input_names) or '(none)'}, identified from {len(result.training.runs)} training "
-            f"run(s) of {n_runs}; {kept} terms kept. Config: {result.config['_source']}.")
+            f"run(s) of {n_runs}; {kept} terms kept. Config: {result.settings.source}.")
     nav = "".join(f'<li><a href="#{key}">{esc(heading)}</a></li>' for key, heading in SECTIONS.items())
     sections = [_caution(), _equations(result), _held_out(result), _warnings(result), _inclusion(result),
                 _cv(result), _ranking(result), _data_overview(result), _derivative_check(result), _inputs(result)]

@@ -324,19 +324,19 @@ def candidates_document(result):
     return {"format": "discover-candidates/1", "candidates": models}
 
 
-def input_files(config, runs=()):
+def input_files(settings, runs=()):
     """The files a run reads: its config file (if any) and its data files."""
     files = [Path(r.source) for r in runs]
-    if config["_source"] != "config":
-        files.append(Path(config["_source"]))
+    if settings.source != "config":
+        files.append(Path(settings.source))
     return files
 
 
 def target_of(result, out_dir=None):
-    config = result.config
+    settings = result.settings
     if out_dir is not None:
         return Path(out_dir)
-    return default_output_dir(config["output"]["dir"], config["_source"], config["_base"])
+    return default_output_dir(settings.output.dir, settings.source, settings.base)
 
 
 def write_outputs(result, out_dir=None, *, force=False):
@@ -346,10 +346,8 @@ def write_outputs(result, out_dir=None, *, force=False):
     (see the module docstring); returns the folder's path.
     """
     runs = list(result.training.runs) + list(result.held_out.runs)
-    with OutputClaim(target_of(result, out_dir), force=force, inputs=input_files(result.config, runs)) as claim:
-        target = claim.publish(lambda folder: write_files(result, folder))
-    result.output_dir = target
-    return target
+    with OutputClaim(target_of(result, out_dir), force=force, inputs=input_files(result.settings, runs)) as claim:
+        return claim.publish(lambda folder: write_files(result, folder))
 
 
 def write_files(result, folder):
@@ -366,19 +364,19 @@ def write_files(result, folder):
     if result.ensemble is not None:
         result.inclusion_table().to_csv(folder / "inclusion_probabilities.csv", index=False)
     if result.ranking is not None:
-        result.ranking.to_csv(folder / "ranking.csv", index=False)
+        result.ranking.table.to_csv(folder / "ranking.csv", index=False)
         (folder / "candidates.json").write_text(json.dumps(candidates_document(result), indent=1) + "\n")
-    stems = report.file_stems([item["run"] for item in result.validation])
+    stems = report.file_stems([item.run for item in result.validation])
     for item, stem in zip(result.validation, stems):
-        if "band" in item:
+        if item.band is not None:
             report.band_table(item, model.state_names).to_csv(folder / f"band_{stem}.csv", index=False)
-    (folder / "config_effective.toml").write_text(to_toml(result.config, absolute_paths=True))
+    (folder / "config_effective.toml").write_text(to_toml(result.settings, absolute_paths=True))
     (folder / "provenance.json").write_text(json.dumps(provenance(result), indent=2) + "\n")
     (folder / "warnings.txt").write_text("".join(f"{w}\n" for w in result.warnings))
     (folder / "summary.txt").write_text(report.summary(result) + "\n")
-    if result.config["output"]["figures"]:
+    if result.settings.output.figures:
         report.write_figures(result, folder)
-    if result.config["output"]["report"]:
+    if result.settings.output.report:
         from . import html_report
 
         html_report.write_report(result, folder)

@@ -22,9 +22,9 @@ def provenance(result):
     held = {id(r) for r in result.held_out.runs}
     runs = list(result.training.runs) + list(result.held_out.runs)
     return {
-        "config_source": result.config["_source"],
-        "config_base": result.config["_base"],
-        "seed": result.config["seed"],
+        "config_source": result.settings.source,
+        "config_base": result.settings.base,
+        "seed": result.settings.seed,
         "data_files": [
             {"run": r.name, "path": str(Path(r.source).resolve()), "sha256": r.sha256,
              "role": "held_out" if id(r) in held else "training", "samples": r.n_samples}
@@ -33,4 +33,5 @@ def provenance(result):
         "packages": packages,
         "python": platform.python_version(),
         "blas_threads": 1,
+        "stage_seconds": dict(result.timings),
     }

@@ -33,7 +33,6 @@ import pandas as pd
 
 from .terms import term_key
 
-CRITERIA = ("aicc", "aic", "bic", "simulation_error", "derivative_error")
 
 
 @dataclass(frozen=True)
@@ -179,11 +178,11 @@ def order_table(table, criterion="aicc"):
     return table
 
 
-def why_chosen(table, criterion):
+def why_chosen(table, criterion, scored_on="held-out runs"):
     """One sentence on the rank-1 candidate."""
     best = table.iloc[0]
     text = (f"Chosen: {best['candidate']!r} ({best['n_terms']} terms), lowest {criterion} on the "
-            f"held-out runs")
+            f"{scored_on}")
     close = table[(table["delta_aicc"] <= 2) & (table["rank"] > 1)]
     if len(close):
         text += (f"; {len(close)} other candidate(s) within ΔAICc ≤ 2 have substantial support too: "

@@ -52,18 +52,17 @@ def summary(result):
     if result.validation:
         lines.append("Held-out runs (free-run simulation with the recorded input):")
         for item in result.validation:
-            sim = item["simulation"]
+            sim = item.simulation
             if sim.diverged:
-                lines.append(f"  {item['run']}: diverged ({sim.message})")
+                lines.append(f"  {item.run}: diverged ({sim.message})")
                 continue
-            fits = ", ".join(f"{s} {f:.1f} %" for s, f in zip(model.state_names, item["metrics"]["fit_percent"]))
-            lines.append(f"  {item['run']}: fit {fits}")
-            if "band_coverage" in item:
-                level = result.config["bootstrap"]["level"]
-                cover = ", ".join(f"{s} {100 * c:.0f} %" for s, c in zip(model.state_names, item["band_coverage"]))
-                lines.append(f"  {item['run']}: samples inside the {100 * level:.0f} % ensemble band: {cover}")
+            fits = ", ".join(f"{s} {f:.1f} %" for s, f in zip(model.state_names, item.metrics["fit_percent"]))
+            lines.append(f"  {item.run}: fit {fits}")
+            if item.band is not None:
+                cover = ", ".join(f"{s} {100 * c:.0f} %" for s, c in zip(model.state_names, item.band.coverage))
+                lines.append(f"  {item.run}: samples inside the {100 * item.band.level:.0f} % ensemble band: {cover}")
     if result.ranking is not None:
-        lines += ranking_lines(result.ranking, result.config["ranking"]["criterion"])
+        lines += ranking_lines(result.ranking.table, result.ranking.criterion, scored_on=result.ranking.scored_on)
     for warning in result.warnings:
         lines.append(f"Warning: {warning}")
     lines.append(CAUTION)
@@ -122,18 +121,18 @@ def plot_held_out(item, state_names, *, band=None):
     plt = _pyplot()
     n = len(state_names)
     fig, axes = plt.subplots(n, 1, figsize=(7, 2.2 * n + 0.6), sharex=True, squeeze=False)
-    sim = item["simulation"]
+    sim = item.simulation
     for i, (ax, state) in enumerate(zip(axes[:, 0], state_names)):
         if band is not None:
             ax.fill_between(sim.t, band[0][:, i], band[1][:, i], color="0.85", label="ensemble band", zorder=1)
-        ax.plot(item["t"], item["x"][:, i], color="0.45", linewidth=0.8, label="measured", zorder=2)
+        ax.plot(item.t, item.x[:, i], color="0.45", linewidth=0.8, label="measured", zorder=2)
         ax.plot(sim.t, sim.x[:, i], color="black", linestyle="--", linewidth=1.2, label="simulated", zorder=3)
         ax.set_ylabel(state)
-        fit = item["metrics"]["fit_percent"][i]
+        fit = item.metrics["fit_percent"][i]
         ax.set_title(f"{state}: fit {fit:.1f} %" if np.isfinite(fit) else f"{state}: diverged", fontsize=9)
     axes[0, 0].legend(loc="best", fontsize=8)
     axes[-1, 0].set_xlabel("time")
-    fig.suptitle(f"held-out run {item['run']}", fontsize=10)
+    fig.suptitle(f"held-out run {item.run}", fontsize=10)
     fig.tight_layout()
     return fig
 
@@ -174,12 +173,12 @@ def _write_figures(result, folder):
             result.library_terms, result.model.state_names, result.ensemble.summary.inclusion_probability)))
         figures.append(("coefficient_distributions.png",
                         plot_coefficient_distributions(result.model, result.ensemble.coef)))
-    if result.ranking is not None and len(result.ranking):
-        figures.append(("ranking_pareto.png", plot_pareto(result.ranking)))
+    if result.ranking is not None and len(result.ranking.table):
+        figures.append(("ranking_pareto.png", plot_pareto(result.ranking.table)))
         if result.validation:
-            figures.append(("ranking_top.png", plot_top_candidates(result, result.config["ranking"]["top"])))
-    for item, stem in zip(result.validation, file_stems([item["run"] for item in result.validation])):
-        band = item["band"][1:] if "band" in item else None
+            figures.append(("ranking_top.png", plot_top_candidates(result, result.settings.ranking.top)))
+    for item, stem in zip(result.validation, file_stems([item.run for item in result.validation])):
+        band = (item.band.low, item.band.high) if item.band is not None else None
         figures.append((f"heldout_{stem}.png",
                         plot_held_out(item, result.model.state_names, band=band)))
     for name, fig in figures:
@@ -189,13 +188,13 @@ def _write_figures(result, folder):
 
 def band_table(item, state_names):
     """Median trajectory and central band of the ensemble on one held-out run."""
-    median, low, high = item["band"]
-    table = {"t": item["t"]}
+    band = item.band
+    table = {"t": item.t}
     for i, state in enumerate(state_names):
-        table[f"{state}_measured"] = item["x"][:, i]
-        table[f"{state}_median"] = median[:, i]
-        table[f"{state}_low"] = low[:, i]
-        table[f"{state}_high"] = high[:, i]
+        table[f"{state}_measured"] = item.x[:, i]
+        table[f"{state}_median"] = band.median[:, i]
+        table[f"{state}_low"] = band.low[:, i]
+        table[f"{state}_high"] = band.high[:, i]
     return pd.DataFrame(table)
 
 
@@ -244,11 +243,11 @@ def plot_coefficient_distributions(model, ensemble_coef):
     return fig
 
 
-def ranking_lines(table, criterion, top=8):
+def ranking_lines(table, criterion, top=8, *, scored_on="held-out runs"):
     """The ranking as aligned text lines (the CSV holds every column)."""
     from .ranking import why_chosen
 
-    lines = [f"Ranking of {len(table)} candidate structures on the held-out runs (by {criterion}; "
+    lines = [f"Ranking of {len(table)} candidate structures on the {scored_on} (by {criterion}; "
              "ΔAICc ≤ 2 substantial support, > 10 essentially none):",
              f"  {'rank':>4} {'terms':>5} {'ΔAICc':>9} {'weight':>6} {'sim. error':>10}  {'support':<16} candidate"]
     for _, row in table.head(top).iterrows():
@@ -257,7 +256,7 @@ def ranking_lines(table, criterion, top=8):
                      f"{row['simulation_error']:>10.4f}  {row['support']:<16} {row['candidate']}{flag}")
     if len(table) > top:
         lines.append(f"  ... {len(table) - top} more in ranking.csv")
-    lines.append("  " + why_chosen(table, criterion))
+    lines.append("  " + why_chosen(table, criterion, scored_on))
     return lines
 
 
@@ -294,17 +293,17 @@ def plot_top_candidates(result, top):
     fig, axes = plt.subplots(len(names), 1, figsize=(7, 2.2 * len(names) + 0.6), sharex=True, squeeze=False)
     styles = ["-", "--", ":", "-.", (0, (5, 1)), (0, (1, 1))]
     for i, ax in enumerate(axes[:, 0]):
-        ax.plot(item["t"], item["x"][:, i], color="0.7", linewidth=2.0, label="measured")
+        ax.plot(item.t, item.x[:, i], color="0.7", linewidth=2.0, label="measured")
         ax.set_ylabel(names[i])
-    for n, (_, row) in enumerate(result.ranking.head(top).iterrows()):
+    for n, (_, row) in enumerate(result.ranking.table.head(top).iterrows()):
         c = by_name[row["candidate"]]
         model = Model(names, result.model.input_names, c.terms, c.coef)
-        traj = run_model(model, item["t"], item["x0"], item["u"], result.simulation)
+        traj = run_model(model, item.t, item.x0, item.u, result.simulation)
         for i, ax in enumerate(axes[:, 0]):
-            ax.plot(item["t"], traj.x[:, i], color="black", linestyle=styles[n % len(styles)], linewidth=1.0,
+            ax.plot(item.t, traj.x[:, i], color="black", linestyle=styles[n % len(styles)], linewidth=1.0,
                     label=f"#{row['rank']} {row['candidate']}")
     axes[0, 0].legend(fontsize=7, loc="best")
     axes[-1, 0].set_xlabel("time")
-    fig.suptitle(f"top candidates on held-out run {item['run']}", fontsize=10)
+    fig.suptitle(f"top candidates on held-out run {item.run}", fontsize=10)
     fig.tight_layout()
     return fig

@@ -60,7 +60,7 @@ def estimate(*, library_terms, n_states, run_lengths, sub_length, n_folds, membe
     """
     width = library_terms + n_states
     gram = 8 * width * width
-    n_blocks = sum(min(n, max(n_folds, n // max(sub_length, 1))) for n in run_lengths)
+    n_blocks = sum(min(n, max(n_folds, n // max(sub_length, 1))) for n in run_lengths)  # as sub_block_sizes
     rows_at_once = sum(run_lengths) if keep_rows else max(run_lengths, default=0)
     if chunk_rows:
         rows_at_once = min(rows_at_once, 3 * chunk_rows)

@@ -27,7 +27,9 @@ ILL_CONDITIONED = (
     "The scaled Gram matrix of the terms kept for {state!r} has condition number {cond:.2g}; "
     "the coefficients of nearly collinear terms are poorly determined."
 )
-#: Above this condition number of a scaled Gram, Cholesky gives way to a least-squares solve.
+#: Above this condition number of the scaled Gram of an equation's kept terms, the run
+#: warns that their coefficients are poorly determined (an exactly singular system is
+#: solved by minimum-norm least squares instead, see :func:`_solve_spd`).
 COND_LIMIT = 1e10
 
 
@@ -181,6 +183,14 @@ class BlockGrams:
         return np.tensordot(weights, self.grams, axes=1), float(weights @ self.counts)
 
 
+def sub_block_sizes(n_rows, sub_length, n_folds):
+    """Rows of each contiguous sub-block of a run: about ``sub_length`` rows, at least
+    ``n_folds`` sub-blocks (every path, in memory or in chunks, cuts runs this way)."""
+    n_sub = min(n_rows, max(n_folds, n_rows // sub_length))
+    base, extra = divmod(n_rows, n_sub)
+    return [base + 1] * extra + [base] * (n_sub - extra)
+
+
 def block_grams(blocks, n_terms=None):
     """Block Grams from an iterable of ``(run_index, theta, x_dot)`` blocks.
 
@@ -312,7 +322,6 @@ class CVCurve:
     rule: str
 
 
-CV_RULES = ("one_se", "min")
 
 
 def choose_threshold(thresholds, error, error_se, rule):
@@ -368,3 +377,74 @@ def cross_validate(block_set, folds, thresholds, *, ridge, max_iter, rule="one_s
     error_se = errors.std(axis=1, ddof=1) / np.sqrt(len(labels)) if len(labels) > 1 else np.zeros_like(error)
     selected = choose_threshold(thresholds, error, error_se, rule)
     return CVCurve(np.asarray(thresholds), error, error_se, n_terms, selected, rule)
+
+
+# --------------------------------------------------------------------------- the selection stage
+
+
+@dataclass(frozen=True)
+class Selection:
+    """The single sparse model of the selection stage.
+
+    Attributes
+    ----------
+    coef : ndarray of shape (n_terms, n_states)
+        In the data's units.
+    thresholds : ndarray of shape (n_states,)
+        The dimensionless threshold of each equation (cross-validated or fixed).
+    cv : CVCurve or None
+        None for a fixed threshold.
+    split : str or None
+        How the CV folds were cut ("runs" or "blocks").
+    converged : bool
+    warnings : tuple of str
+    """
+
+    coef: np.ndarray
+    thresholds: np.ndarray
+    cv: CVCurve | None
+    split: str | None
+    converged: bool
+    warnings: tuple
+
+
+def threshold_grid(selection):
+    """The thresholds to cross-validate, ascending, from the ``[selection]`` settings."""
+    if selection.thresholds is not None:
+        return np.unique(np.asarray(selection.thresholds, dtype=float))
+    return np.geomspace(selection.threshold_min, selection.threshold_max, selection.threshold_count)
+
+
+def select_terms(selection, blocks, folds, state_names, *, split=None):
+    """Cross-validate the threshold per state (or take the fixed one) and fit the model.
+
+    Parameters
+    ----------
+    selection : the ``[selection]`` settings
+    blocks : BlockGrams
+    folds : ndarray of shape (n_blocks,)
+        CV fold of each block.
+    """
+    k = blocks.n_terms
+    total, count = blocks.total()
+    cv = None
+    if selection.threshold == "cv":
+        cv = cross_validate(blocks, folds, threshold_grid(selection), ridge=selection.ridge,
+                            max_iter=selection.max_iter, rule=selection.cv_rule)
+        thresholds = cv.selected
+    else:
+        thresholds = np.full(len(state_names), selection.threshold)
+    coef, converged = fit_scaled(total, count, k, threshold=thresholds, ridge=selection.ridge,
+                                 max_iter=selection.max_iter)
+    notes = []
+    if not converged:
+        notes.append(NOT_CONVERGED.format(max_iter=selection.max_iter))
+    for state, cond in zip(state_names, condition_numbers(total, count, k, coef != 0)):
+        if cond > COND_LIMIT:
+            notes.append(ILL_CONDITIONED.format(state=state, cond=cond))
+    for i, state in enumerate(state_names):
+        if not np.any(coef[:, i]):
+            notes.append(f"Every term of d({state})/dt fell below the threshold {thresholds[i]:.3g}; "
+                         "its equation is empty (dx/dt = 0).")
+    return Selection(coef, np.asarray(thresholds, dtype=float), cv, split if cv is not None else None,
+                     bool(converged), tuple(notes))

@@ -15,29 +15,36 @@ smoothing spline and the Kalman smoother see the whole run at once.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
-from .config import derivative_options
 from .data import READERS, Run, _check_csv_layout, _column, file_hash, head_lines, normalize_name
-from .derivatives import DERIVATIVE_METHODS
+from .derivatives import DERIVATIVE_METHODS, stream_half_width
 from .exceptions import DataError
-from .selection import BlockGrams
+from .selection import BlockGrams, sub_block_sizes
 
-STREAMING_METHODS = ("finite_difference", "savitzky_golay")
 #: Rows of each run used to estimate the correlation length (both in memory and streaming).
 CORRELATION_ROWS = 20_000
 #: Training runs keep at most this many evenly spaced samples in memory, for plots and limits.
 THIN_ROWS = 2_000
 
 
-def half_width(method, options):
-    """Neighbours on each side that one derivative sample depends on."""
-    if method == "savitzky_golay":
-        return options.get("window", 11) // 2
-    return options.get("order", 2) // 2
+@dataclass(frozen=True)
+class ChunkReading:
+    """How training runs are read in chunks: the ``[data]`` and ``[derivatives]`` settings,
+    the resolved trim and the chunk size."""
+
+    data: object
+    derivatives: object
+    trim: int
+    chunk_rows: int
+
+    @property
+    def half_width(self):
+        """Neighbours on each side one derivative sample depends on."""
+        return stream_half_width(self.derivatives.method, dict(self.derivatives.options))
 
 
 def raw_chunks(path, rename, chunk_rows):
@@ -88,8 +95,14 @@ def checked_chunks(path, *, time, states, inputs, rename, chunk_rows):
 
 @dataclass
 class RunStats:
-    """What a streaming pass learns about one run besides its Grams."""
+    """What a streaming pass learns about one run besides its Grams, and its thin samples.
 
+    Every ``thin_step``-th raw sample is kept for plots and limits (collected during the
+    Gram pass, so no other pass over the file is needed).
+    """
+
+    thin_step: int = 1
+    thin: list = field(default_factory=list)
     n_samples: int = 0
     x_min: np.ndarray | None = None
     x_max: np.ndarray | None = None
@@ -99,7 +112,9 @@ class RunStats:
     noise_sq: np.ndarray | None = None
     n_trimmed: int = 0
 
-    def add_raw(self, x, u):
+    def add_raw(self, t, x, u):
+        rows = np.arange((-self.n_samples) % self.thin_step, len(t), self.thin_step)
+        self.thin.append((t[rows], x[rows], u[rows]))
         self.n_samples += len(x)
         for name, values in (("x", x), ("u", u)):
             low, high = values.min(axis=0, initial=np.inf), values.max(axis=0, initial=-np.inf)
@@ -108,25 +123,24 @@ class RunStats:
             setattr(self, f"{name}_max", high if old_high is None else np.maximum(old_high, high))
 
 
-def smoothed_chunks(path, config, chunk_rows, stats=None):
+def smoothed_chunks(path, reading, stats=None):
     """``(first_row, (t, x_smooth, x_dot, u, x_raw))`` pieces of one run, in order.
 
     The buffer keeps ``h`` rows before the next row to emit and the ``h`` rows after the
     last one emitted, so every emitted row is computed from the same neighbours as in
     the whole run (and the run's two ends with the same edge handling).
     """
-    data, deriv = config["data"], config["derivatives"]
-    method = deriv["method"]
-    options = derivative_options(config)
-    h = half_width(method, options)
+    data = reading.data
+    method, options = reading.derivatives.method, dict(reading.derivatives.options)
+    h = reading.half_width
     buffer, start_row, t0, emitted = None, 0, None, 0
-    chunks = checked_chunks(path, time=data["time"], states=data["states"], inputs=data["inputs"],
-                            rename=data["rename"], chunk_rows=chunk_rows)
+    chunks = checked_chunks(path, time=data.time, states=data.states, inputs=data.inputs,
+                            rename=data.rename, chunk_rows=reading.chunk_rows)
     pending = next(chunks, None)
     while pending is not None:
         following = next(chunks, None)
         if stats is not None:
-            stats.add_raw(pending[1], pending[2])
+            stats.add_raw(*pending)
         t0 = pending[0][0] if t0 is None else t0
         buffer = pending if buffer is None else tuple(np.concatenate([b, c]) for b, c in zip(buffer, pending))
         last = following is None
@@ -148,16 +162,16 @@ def smoothed_chunks(path, config, chunk_rows, stats=None):
             start_row += cut
 
 
-def trimmed_pieces(path, config, chunk_rows, n_samples, stats=None):
+def trimmed_pieces(path, reading, n_samples, stats=None):
     """Pieces of the run without ``trim`` samples at each end."""
-    trim = config["derivatives"]["trim_resolved"]
-    for first, piece in smoothed_chunks(path, config, chunk_rows, stats):
+    trim = reading.trim
+    for first, piece in smoothed_chunks(path, reading, stats):
         lo, hi = max(trim - first, 0), min(n_samples - trim - first, len(piece[0]))
         if hi > lo:
             yield tuple(p[lo:hi] for p in piece)
 
 
-def count_rows(path, config, chunk_rows):
+def count_rows(path, reading):
     """Rows of a run file, from one light pass over its time column."""
     if READERS.get(path.suffix.lower()) == "parquet":
         import pyarrow.parquet as pq
@@ -166,31 +180,30 @@ def count_rows(path, config, chunk_rows):
             return pq.ParquetFile(path).metadata.num_rows
         except Exception as err:
             raise DataError(f"{path}: not a readable Parquet file ({type(err).__name__}: {err}).") from None
-    time = config["data"]["time"]
-    rename = {v: k for k, v in config["data"]["rename"].items()}
+    time = reading.data.time
+    rename = {v: k for k, v in reading.data.rename.items()}
     column = [c for c, n in rename.items() if n == time] or [time]
     _check_csv_layout(path, head_lines(path))
     try:
-        return sum(len(f) for f in pd.read_csv(path, usecols=column, chunksize=max(chunk_rows, 100_000)))
+        return sum(len(f) for f in pd.read_csv(path, usecols=column, chunksize=max(reading.chunk_rows, 100_000)))
     except ValueError:
         raise DataError(f"{path}: missing column {time!r} (the [data].time column).") from None
 
 
-def sub_block_sizes(n_trimmed, sub_length, n_folds):
-    """Row counts of the sub-blocks of a run: the same split as the in-memory path."""
-    n_sub = min(n_trimmed, max(n_folds, n_trimmed // sub_length))
-    return [len(r) for r in np.array_split(np.arange(n_trimmed), n_sub)]
+def stream_grams(paths, reading, library, sub_length, n_folds, sizes_of_runs, stats=None):
+    """BlockGrams of the training runs from one streaming pass per run.
 
-
-def stream_grams(paths, config, library, sub_length, n_folds, sizes_of_runs, chunk_rows, stats=None):
-    """BlockGrams of the training runs from one streaming pass per run."""
+    With ``stats`` (a dict filled per run index) the pass also records each run's
+    extremes, noise sums and thin samples.
+    """
     k = len(library)
     grams, counts, runs, positions = [], [], [], []
     for r, (path, n_samples) in enumerate(zip(paths, sizes_of_runs)):
-        run_stats = None if stats is None else stats.setdefault(r, RunStats())
-        sizes = sub_block_sizes(n_samples - 2 * config["derivatives"]["trim_resolved"], sub_length, n_folds)
+        thin_step = max(1, -(-n_samples // THIN_ROWS))
+        run_stats = None if stats is None else stats.setdefault(r, RunStats(thin_step))
+        sizes = sub_block_sizes(n_samples - 2 * reading.trim, sub_length, n_folds)
         block, filled, position = None, 0, 0
-        for t, xs, xd, u, xr in trimmed_pieces(path, config, chunk_rows, n_samples, run_stats):
+        for t, xs, xd, u, xr in trimmed_pieces(path, reading, n_samples, run_stats):
             if run_stats is not None:
                 residual = xr - xs
                 run_stats.noise_sum = residual.sum(axis=0) + (0 if run_stats.noise_sum is None else run_stats.noise_sum)
@@ -217,10 +230,10 @@ def stream_grams(paths, config, library, sub_length, n_folds, sizes_of_runs, chu
     return BlockGrams(np.array(grams), np.array(counts), np.array(runs), k, np.array(positions))
 
 
-def prefix_derivative(path, config, chunk_rows, n_samples):
+def prefix_derivative(path, reading, n_samples):
     """ẋ of the first CORRELATION_ROWS trimmed samples, for the correlation length."""
     out, total = [], 0
-    for piece in trimmed_pieces(path, config, chunk_rows, n_samples):
+    for piece in trimmed_pieces(path, reading, n_samples):
         out.append(piece[2])
         total += len(piece[2])
         if total >= CORRELATION_ROWS:
@@ -228,17 +241,9 @@ def prefix_derivative(path, config, chunk_rows, n_samples):
     return np.vstack(out)[:CORRELATION_ROWS]
 
 
-def thin_run(path, config, chunk_rows, n_samples, stats):
-    """A run with at most THIN_ROWS evenly spaced raw samples (for plots and limits)."""
-    step = max(1, -(-n_samples // THIN_ROWS))
-    parts, offset = [], 0
-    data = config["data"]
-    for t, x, u in checked_chunks(path, time=data["time"], states=data["states"], inputs=data["inputs"],
-                                  rename=data["rename"], chunk_rows=chunk_rows):
-        rows = np.arange((-offset) % step, len(t), step)
-        parts.append((t[rows], x[rows], u[rows]))
-        offset += len(t)
-    t, x, u = (np.concatenate([p[i] for p in parts]) for i in range(3))
-    # The extremes come from the full pass, so that limits and excitation checks are exact.
-    return Run(name=path.stem, t=t, x=x, u=u, source=str(path), touched=0, sha256=file_hash(path), n_total=n_samples,
-               extremes=(stats.x_min, stats.x_max, stats.u_min, stats.u_max))
+def thin_run(path, n_samples, stats):
+    """A run with at most THIN_ROWS evenly spaced raw samples (for plots and limits), from the
+    samples the Gram pass kept; its extremes are exact, from the same pass."""
+    t, x, u = (np.concatenate([p[i] for p in stats.thin]) for i in range(3))
+    return Run(name=path.stem, t=t, x=x, u=u, source=str(path), touched=0, sha256=file_hash(path),
+               n_total=n_samples, extremes=(stats.x_min, stats.x_max, stats.u_min, stats.u_max))

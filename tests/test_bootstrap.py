@@ -6,6 +6,7 @@ from numpy.testing import assert_allclose
 
 import discover
 from discover import bootstrap
+from discover.compute import Executor
 from discover.expressions import parse_expression
 from discover.selection import block_grams, fit_scaled
 from discover.terms import term_key
@@ -73,7 +74,8 @@ def test_interval_coverage_on_a_linear_regression():
         blocks = block_grams(pieces)
         weights = bootstrap.member_weights(blocks.runs, 200, "blocks", rng)
         available = np.ones((200, 2), dtype=bool)
-        coef = bootstrap.fit_ensemble(blocks, weights, available, np.array([0.01]), ridge=0.0, max_iter=20)
+        coef = bootstrap.fit_ensemble(blocks, weights, available, np.array([0.01]), ridge=0.0, max_iter=20,
+                                      executor=Executor())
         summary = bootstrap.summarize(coef, available, level=0.9)
         covered += (summary.low_all[0, 0] <= true[0] <= summary.high_all[0, 0])
     print(f"90 % interval covered the true coefficient in {covered}/{reps} repetitions")
@@ -178,8 +180,10 @@ def test_n_jobs_does_not_change_the_members():
     blocks = block_grams([(0, theta[r], y[r]) for r in np.array_split(np.arange(300), 30)])
     weights = bootstrap.member_weights(blocks.runs, 40, "blocks", np.random.default_rng(0))
     available = np.ones((40, 5), dtype=bool)
-    one = bootstrap.fit_ensemble(blocks, weights, available, np.array([0.05]), ridge=1e-6, max_iter=20, n_jobs=1)
-    two = bootstrap.fit_ensemble(blocks, weights, available, np.array([0.05]), ridge=1e-6, max_iter=20, n_jobs=2)
+    one = bootstrap.fit_ensemble(blocks, weights, available, np.array([0.05]), ridge=1e-6, max_iter=20,
+                                  executor=Executor(n_jobs=1))
+    two = bootstrap.fit_ensemble(blocks, weights, available, np.array([0.05]), ridge=1e-6, max_iter=20,
+                                  executor=Executor(n_jobs=2))
     assert np.array_equal(one, two)
     # And a member equals a direct fit on its weighted rows.
     w_rows = np.repeat(weights[0], blocks.counts)

@@ -26,11 +26,22 @@ def message(raw):
 
 
 def test_defaults_fill_every_key():
-    config = validate(BASE, "cfg.toml")
+    config = validate(BASE, "cfg.toml").as_dict()
     for section, keys in SCHEMA.items():
         table = config if section == "" else config[section]
         assert set(keys) <= set(table)
     assert config["derivatives"]["window"] == 11  # the default method's own option
+
+
+def test_settings_are_frozen():
+    import dataclasses
+
+    settings = validate(BASE, "cfg.toml")
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        settings.selection.cv_folds = 3
+    with pytest.raises(TypeError):
+        settings.derivatives.options["window"] = 5
+    assert isinstance(settings.data.states, tuple)
 
 
 def test_misspelled_key_names_the_closest_valid_key():
@@ -46,7 +57,8 @@ def test_misspelled_section():
 
 def test_even_window_is_refused_with_the_value():
     text = message(merged("derivatives", method="savitzky_golay", window=10))
-    assert text == "cfg.toml: [derivatives].window must be an odd int >= 0. Got 10."
+    assert text == "cfg.toml: [derivatives].window must be an odd int >= 3. Got 10."
+    assert message(merged("derivatives", window=1)) == "cfg.toml: [derivatives].window must be an odd int >= 3. Got 1."
 
 
 def test_unknown_method_lists_the_choices():
@@ -77,7 +89,16 @@ def test_term_variables_must_be_columns():
 
 def test_method_option_checked_at_config_time():
     text = message(merged("derivatives", method="savitzky_golay", window=5, order=5))
-    assert text.startswith("cfg.toml: [derivatives].order") or "window" in text
+    assert text == ("cfg.toml: [derivatives].window must be greater than [derivatives].order for "
+                    "'savitzky_golay'. Got window = 5, order = 5.")
+
+
+def test_deprecated_names_are_read_with_a_note():
+    settings = validate(merged("derivatives", method="kalman", alpha=2.0), "cfg.toml")
+    assert settings.derivatives.options["noise_ratio"] == 2.0
+    assert any("[derivatives].alpha is now [derivatives].noise_ratio" in n for n in settings.notes)
+    settings = validate(merged("bootstrap", coefficients="bragg"), "cfg.toml")
+    assert settings.bootstrap.coefficients == "member_median" and settings.notes
 
 
 def test_missing_file_and_bad_toml(tmp_path):
@@ -93,4 +114,4 @@ def test_effective_config_round_trips_through_toml():
     # tomllib (the standard library's TOML reader) reads back what we write.
     config = validate(merged("data", rename={"x": "X [m]"}), "cfg.toml")
     again = validate(tomllib.loads(to_toml(config)), "cfg.toml")
-    assert again == config
+    assert again.as_dict() == config.as_dict()

@@ -43,8 +43,8 @@ def test_held_out_fit_above_90_percent(demo):
     result, _ = demo
     assert result.validation, "the demo config holds a run out"
     for item in result.validation:
-        assert not item["simulation"].diverged
-        assert np.all(item["metrics"]["fit_percent"] > 90.0), item["metrics"]["fit_percent"]
+        assert not item.simulation.diverged
+        assert np.all(item.metrics["fit_percent"] > 90.0), item.metrics["fit_percent"]
 
 
 def test_bioreactor_products_have_high_inclusion_probability():

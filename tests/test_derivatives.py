@@ -293,3 +293,30 @@ def test_too_short_run_is_a_data_error():
         savitzky_golay(t, np.zeros((7, 1)))
     with pytest.raises(DataError, match=r"finite_difference with order = 4 needs uniformly sampled time"):
         finite_difference(jittered_grid(10, 1.0, seed=33), np.zeros((10, 1)), order=4)
+
+
+# --------------------------------------------------------------------------- the method registry
+
+
+@pytest.mark.parametrize("name", sorted(__import__("discover.derivatives", fromlist=["METHODS"]).METHODS))
+def test_every_method_record_is_complete_and_checks_its_options(name):
+    # One common test per registry (the anchors' pattern: scikit-learn's test_common.py).
+    from discover.config import validate
+    from discover.derivatives import METHODS, default_trim, min_samples
+
+    record = METHODS[name]
+    defaults = record.defaults()
+    assert default_trim(name, {}) >= 0 and min_samples(name, {}) >= 2 * default_trim(name, {}) + 3
+    settings = validate({"data": {"files": ["a.csv"], "states": ["x"]}, "derivatives": {"method": name}})
+    assert dict(settings.derivatives.options) == defaults
+    for option in record.options:
+        bad = -1 if option.minimum is not None else "text"
+        with pytest.raises(ConfigError, match=rf"\[derivatives\]\.{option.name} must be"):
+            validate({"data": {"files": ["a.csv"], "states": ["x"]},
+                      "derivatives": {"method": name, option.name: bad}})
+    t = np.linspace(0.0, 2.0, 101)
+    x = np.column_stack([1 + 2 * t, 3 - t])  # a line: every method is exact on it (common practice)
+    x_smooth, x_dot = record.function(t, x, **defaults)
+    trim = default_trim(name, {})
+    inner = slice(trim, len(t) - trim)
+    np.testing.assert_allclose(x_dot[inner], np.broadcast_to([2.0, -1.0], x_dot[inner].shape), atol=1e-3)

@@ -197,8 +197,8 @@ def test_diverging_model_is_reported_in_outputs(tmp_path):
     config["simulation"] = {"divergence_factor": 2.0}
     config["bootstrap"] = {"members": 5}  # every member diverges too
     result = discover.run(config)
-    assert result.validation[0]["simulation"].diverged
-    assert result.validation[0]["members_diverged"] == 5
+    assert result.validation[0].simulation.diverged
+    assert result.validation[0].band.members_diverged == 5
     assert any("diverged" in w for w in result.warnings)
     assert any("5 of 5 ensemble members diverged" in w for w in result.warnings)
     out = discover.write_outputs(result, tmp_path / "out")

@@ -57,8 +57,8 @@ def test_lorenz_held_out_run_is_predicted(lorenz_result):
     # A chaotic system diverges from any model eventually; over the first second the
     # recovered model must track the held-out run closely.
     item = lorenz_result.validation[0]
-    first_second = item["t"] < item["t"][0] + 1.0
-    error = item["simulation"].x[first_second] - item["x"][first_second]
+    first_second = item.t < item.t[0] + 1.0
+    error = item.simulation.x[first_second] - item.x[first_second]
     assert np.max(np.abs(error)) < 0.5
 
 

@@ -64,7 +64,7 @@ def test_ship_true_structure_ranks_first_and_no_cubic_is_far_behind(ship):
     from data_demo.make_ship import TRUE_COEFFICIENTS
 
     truth = frozenset((s, k) for s, terms in truth_map(TRUE_COEFFICIENTS).items() for k in terms)
-    table = ship.ranking
+    table = ship.ranking.table
     assert structure_of(ship, table.loc[0, "candidate"]) == truth
     row = table[table["candidate"] == "hypothesis 'no cubic damping'"].iloc[0]
     assert row["rank"] > 1 and row["delta_aicc"] > 10
@@ -84,7 +84,7 @@ def test_lorenz_true_structure_on_pareto_front_and_first_among_path_candidates(t
         "output": {"figures": False},
     })
     truth = frozenset((s, k) for s, terms in truth_map(LORENZ_INPUT_TRUTH).items() for k in terms)
-    table = result.ranking
+    table = result.ranking.table
     is_path = (table["source"] == "path") | table["also"].str.contains("path threshold")
     first_path = table[is_path].iloc[0]
     assert structure_of(result, first_path["candidate"]) == truth

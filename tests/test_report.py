@@ -16,6 +16,7 @@ import pytest
 from PIL import Image  # Pillow, a dependency of matplotlib
 
 import discover
+import discover.smoothing
 from discover import html_report
 
 try:
@@ -144,14 +145,14 @@ def test_ship_report_tables_are_real_tables_with_the_results(ship_report):
     page = parse(text)
     assert len(page.tables) >= 6 and "th" in page.tags and "caption" in page.tags
     # The ranking table lists every candidate (8 here, under the row limit), in rank order.
-    ranking = page.table(f"{len(result.ranking)} candidate structures")
+    ranking = page.table(f"{len(result.ranking.table)} candidate structures")
     assert ranking[0][:2] == ["rank", "candidate"]
-    assert [row[1] for row in ranking[1:]] == list(result.ranking["candidate"])
+    assert [row[1] for row in ranking[1:]] == list(result.ranking.table["candidate"])
     # Held-out fit percentages, as the terminal summary prints them (one decimal).
     fits = page.table("held-out fit")
     for item in result.validation:
-        for state, fit in zip(result.model.state_names, item["metrics"]["fit_percent"]):
-            assert [item["run"], state, f"{fit:.1f} %"] in [row[:3] for row in fits[1:]]
+        for state, fit in zip(result.model.state_names, item.metrics["fit_percent"]):
+            assert [item.run, state, f"{fit:.1f} %"] in [row[:3] for row in fits[1:]]
     # Each kept term with its coefficient, inclusion probability and interval beside it.
     assert {"inclusion_probability", "coefficient_low", "coefficient_high"} <= set(result.model.term_stats)
     for state, kept in result.model.equations():
@@ -249,7 +250,7 @@ def test_figure_functions_label_axes_with_column_names():
     assert [label.split("\n")[0] for label in labels] == ["angle", "rate", "torque"]
     assert fig.axes[-1].get_xlabel() == "time"
     x_dot = np.column_stack([np.cos(t), -np.sin(t)])  # d/dt of sin and cos (calculus)
-    smoothed = discover.pipeline.Smoothed("demo", t[5:-5], x[5:-5], x_dot[5:-5], u[5:-5], x[5:-5] + 0.01)
+    smoothed = discover.smoothing.Smoothed("demo", t[5:-5], x[5:-5], x_dot[5:-5], u[5:-5], x[5:-5] + 0.01)
     fig = html_report.plot_derivative_check(smoothed, t, x + 0.01, ["angle", "rate"])
     assert [fig.axes[k].get_ylabel() for k in (0, 3)] == ["angle", "rate"]
     assert [fig.axes[k].get_ylabel() for k in (2, 5)] == ["d(angle)/dt", "d(rate)/dt"]

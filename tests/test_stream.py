@@ -9,7 +9,8 @@ import discover
 from discover import stream
 from discover.config import load_config
 from discover.data import load_dataset
-from discover.pipeline import differentiate, end_trim
+from discover.derivatives import METHODS
+from discover.smoothing import resolve_trim, smooth_runs
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -30,18 +31,35 @@ def ship(chunk_rows=None, **derivatives):
     return raw
 
 
-@pytest.mark.parametrize("derivatives", [{}, {"method": "finite_difference", "order": 4}])
+STREAMING = [(name, options) for name, record in METHODS.items() if record.stream_half_width is not None
+             for options in ({}, {"order": 4} if name == "finite_difference" else {"window": 21, "order": 2})]
+
+
+@pytest.mark.parametrize("method, options", STREAMING)
 @pytest.mark.parametrize("chunk_rows", [100, 333])
-def test_streamed_derivatives_equal_whole_run_derivatives(chunk_rows, derivatives):
-    # Reference: the same methods on the whole run in memory (scipy savgol_filter, numpy gradient).
-    config = load_config(ship(None, **derivatives))
-    config["derivatives"]["trim_resolved"] = end_trim(config)
-    training, _ = load_dataset(config)
-    for run, whole in zip(training.runs, differentiate(training, config)):
-        pieces = list(stream.trimmed_pieces(Path(run.source), config, chunk_rows, len(run.t)))
+def test_streamed_derivatives_equal_whole_run_derivatives(chunk_rows, method, options):
+    # Every method whose record says it streams: reference is the same method on the whole
+    # run in memory (scipy savgol_filter, numpy gradient).
+    settings = load_config(ship(None, method=method, **options))
+    trim = resolve_trim(settings.derivatives)
+    reading = stream.ChunkReading(settings.data, settings.derivatives, trim, chunk_rows)
+    training, _ = load_dataset(settings)
+    for run, whole in zip(training.runs, smooth_runs(training, settings.derivatives).trimmed):
+        pieces = list(stream.trimmed_pieces(Path(run.source), reading, len(run.t)))
         for streamed, expected in zip((np.concatenate([p[i] for p in pieces]) for i in range(5)),
                                       (whole.t, whole.x, whole.x_dot, whole.u, whole.x_raw)):
             np.testing.assert_array_equal(streamed, expected)
+
+
+def test_thin_samples_come_from_the_gram_pass(monkeypatch):
+    monkeypatch.setattr(stream, "THIN_ROWS", 100)
+    result = discover.run(ship(100))
+    whole, _ = load_dataset(load_config(ship(None)))
+    for run, full in zip(result.training.runs, whole.runs):
+        step = -(-len(full.t) // 100)
+        np.testing.assert_array_equal(run.t, full.t[::step])
+        np.testing.assert_array_equal(run.x, full.x[::step])
+        assert run.n_total == len(full.t) and run.sha256 == full.sha256
 
 
 def test_two_chunk_sizes_give_identical_models_and_match_the_whole_run():

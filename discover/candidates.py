@@ -1,0 +1,97 @@
+"""The ranking stage: collect candidate structures, score them on equal footing, rank them.
+
+Candidates are the identified model, every distinct term set along the threshold path,
+the fits of other libraries, the user's hypotheses and the SR3 supports, all fitted from
+block Grams (:mod:`discover.grams`); :func:`rank_candidates` simulates them on the same
+runs (held-out runs, else the training runs) and orders them (:mod:`discover.ranking`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from . import ranking
+from .grams import fold_labels, library_for
+from .selection import select_terms, threshold_grid
+from .sr3 import sr3_candidates_gram
+from .terms import build_library, term_key
+
+
+@dataclass(frozen=True)
+class Ranking:
+    """The ranked candidates.
+
+    Attributes
+    ----------
+    table : pandas.DataFrame
+        One row per distinct candidate, best first (see :func:`discover.ranking.score_table`).
+    candidates : tuple of discover.ranking.Candidate
+    criterion : str
+    scored_on : str
+        "held-out runs" or "training runs".
+    """
+
+    table: pd.DataFrame
+    candidates: tuple
+    criterion: str
+    scored_on: str
+
+
+def hypothesis_candidate(settings, hypothesis, model, backend, plan):
+    """A user's term set, fitted by least squares; states it leaves out keep the model's terms."""
+    data = settings.data
+    per_state = []
+    for i, state in enumerate(data.states):
+        if state in hypothesis:
+            per_state.append(list(hypothesis[state]))
+        else:
+            per_state.append([model.terms[j] for j in np.flatnonzero(model.coef[:, i])])
+    texts = list(dict.fromkeys(t for terms in per_state for t in terms))
+    library = build_library(data.states, data.inputs, degree=0, constant=False, custom=texts,
+                            where=f"{settings.source}: [[ranking.hypotheses]] {hypothesis['name']!r}")
+    keys = [term_key(t) for t in library.names]
+    support = np.zeros((len(library), len(per_state)), dtype=bool)
+    for i, terms in enumerate(per_state):
+        for t in terms:
+            support[keys.index(term_key(t)), i] = True
+    return ranking.least_squares_candidate(f"hypothesis {hypothesis['name']!r}", "hypothesis", library,
+                                           support, backend.grams(library, plan).blocks)
+
+
+def collect_candidates(settings, model, gram_blocks, library, backend):
+    """The model itself, the user's hypotheses, the threshold path, other libraries and SR3."""
+    sel, rank_cfg = settings.selection, settings.ranking
+    grid = threshold_grid(sel)
+    blocks, plan = gram_blocks.blocks, gram_blocks.plan
+    # Order matters for names: a duplicate term set keeps the first name (user's names first).
+    candidates = [ranking.Candidate("model", "model", model.terms, model.coef)]
+    for hypothesis in rank_cfg.hypotheses:
+        candidates.append(hypothesis_candidate(settings, hypothesis, model, backend, plan))
+    if rank_cfg.path:
+        candidates += ranking.path_candidates(blocks, library, grid, ridge=sel.ridge, max_iter=sel.max_iter,
+                                              label="path")
+    for table in rank_cfg.libraries:
+        other = library_for(settings, table, label=f"[[ranking.libraries]] {table['name']!r}")
+        other_blocks = backend.grams(other, plan).blocks
+        folds, split = fold_labels(other_blocks, sel.cv_folds, sel.cv_split)
+        fit = select_terms(sel, other_blocks, folds, settings.data.states, split=split)
+        candidates.append(ranking.Candidate(f"library {table['name']!r} (cv)", "library", tuple(other.names),
+                                            fit.coef))
+        candidates += ranking.path_candidates(other_blocks, other, grid, ridge=sel.ridge, max_iter=sel.max_iter,
+                                              label=f"library {table['name']!r}")
+    if rank_cfg.sr3:
+        candidates += sr3_candidates_gram(blocks, library, grid)
+    return ranking.merge_duplicates(candidates, model.state_names)
+
+
+def rank_candidates(candidates, model, dataset, smoothed, settings, *, criterion, horizon, scored_on,
+                    inclusion=None, library_terms=None):
+    """Score candidates by simulation on ``dataset`` (with its smoothed runs) and order them."""
+    scores = ranking.score_candidates(
+        candidates, model.state_names, model.input_names, dataset.runs, smoothed.scoring_pairs(),
+        settings=settings, inclusion=inclusion, library_terms=library_terms, horizon=horizon,
+    )
+    return Ranking(ranking.score_table(candidates, scores, criterion), tuple(candidates), criterion, scored_on)
