@@ -20,8 +20,9 @@ examples:
   discover simulate out/ship/model.json data_demo/ship/heldout_sine.csv
 
 A failure caused by the input (config, data, model file) prints one line and exits
-with status 2 (config), 3 (data), 4 (expression), 5 (model file) or 6 (output
-folder); --debug shows the traceback.
+with status 2 (config), 3 (data), 4 (expression), 5 (model file), 6 (output
+folder) or 7 (export arguments: operating point, format, output path); --debug
+shows the traceback.
 """
 
 

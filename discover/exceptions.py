@@ -39,3 +39,13 @@ class OutputError(DiscoverError):
     """The output folder exists already or cannot be written."""
 
     exit_code = 6
+
+
+class ExportError(DiscoverError):
+    """The arguments of an export do not fit the model: operating point, format or output path.
+
+    Exit code 7. A model file that cannot be read, or breaks the contract, stays a
+    :class:`ModelFileError` (exit code 5) also during an export.
+    """
+
+    exit_code = 7

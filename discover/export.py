@@ -17,6 +17,12 @@ Generated code and LaTeX come from the parsed syntax trees by a whitelist walk:
 names become ``x[i]`` / ``u[j]``, functions ``np.sin`` etc., numbers
 ``repr(float)``. No text from the model file is spliced into code, and names
 appear in generated code only as ``repr()`` string literals.
+
+Errors: :class:`~discover.exceptions.ExportError` (exit code 7) when the export's
+arguments do not fit the model (operating point, format, output path, a nonlinear
+model for a linear export); :class:`~discover.exceptions.ModelFileError` (exit
+code 5) when the model itself is at fault. JSON is written as UTF-8 with
+non-ASCII characters kept as they are, and never holds NaN or infinity.
 """
 
 from __future__ import annotations
@@ -29,7 +35,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .exceptions import ModelFileError
+from .exceptions import ExportError, ModelFileError
 from .expressions import parse_expression
 from .model import Model, load_model
 from .symbolic import DERIVATIVE_FUNCTIONS, column_names, derivative, depends_on
@@ -37,10 +43,9 @@ from .symbolic import DERIVATIVE_FUNCTIONS, column_names, derivative, depends_on
 FORMATS = ("python", "latex", "linear", "linearize", "control")
 LINEAR_FORMAT = "discover-linear/1"
 CONTROL_HINT = "python-control is not installed; `pip install control` to get a control.StateSpace."
-
-
-class ExportError(ModelFileError):
-    """An export cannot be made from this model with these arguments."""
+# Significant digits of LaTeX coefficients: those of the terminal summary
+# (``:.4g`` in report.format_equation; tests/test_export.py checks that they agree).
+LATEX_DIGITS = 4
 
 
 class NonlinearModelError(ExportError):
@@ -104,7 +109,7 @@ def _python_code(node, variables):
     if (isinstance(node, ast.Call) and isinstance(node.func, ast.Name) and node.func.id in _NUMPY_FUNCTIONS
             and len(node.args) == 1 and not node.keywords):
         return f"{_NUMPY_FUNCTIONS[node.func.id]}({_python_code(node.args[0], variables)})"
-    raise ExportError(f"cannot export the expression part {ast.unparse(node)!r}: not an allowed construct.")
+    raise ModelFileError(f"cannot export the expression part {ast.unparse(node)!r}: not an allowed construct.")
 
 
 _MODULE_TEMPLATE = '''\
@@ -204,18 +209,63 @@ _LATEX_FUNCTIONS = {"sin": r"\sin", "cos": r"\cos", "tan": r"\tan", "exp": r"\ex
 _SUM, _PRODUCT, _UNARY, _POWER, _ATOM = 1, 2, 3, 4, 5
 
 
+# Greek letters with a LaTeX math command of their own name (LaTeX2e; the capitals
+# that differ from Latin letters). There is no \omicron: it is a Latin o, so
+# "omicron" stays upright text like any other name.
+_GREEK_LETTERS = frozenset((
+    "alpha", "beta", "gamma", "delta", "epsilon", "zeta", "eta", "theta", "iota", "kappa", "lambda", "mu",
+    "nu", "xi", "pi", "rho", "sigma", "tau", "upsilon", "phi", "chi", "psi", "omega",
+    "Gamma", "Delta", "Theta", "Lambda", "Xi", "Pi", "Sigma", "Upsilon", "Phi", "Psi", "Omega",
+))
+
+
+def _upright(text):
+    escaped = "".join(_LATEX_SPECIAL.get(ch, ch) for ch in text)
+    return rf"\mathrm{{{escaped}}}"
+
+
 def latex_name(name):
-    """A column name as a LaTeX math symbol: specials escaped, several letters upright."""
-    escaped = "".join(_LATEX_SPECIAL.get(ch, ch) for ch in str(name))
-    return escaped if len(str(name)) == 1 else rf"\mathrm{{{escaped}}}"
+    r"""A column name as a LaTeX math symbol.
+
+    ``theta -> \theta``, ``theta_1 -> \theta_{1}``, ``omega_m -> \omega_{\mathrm{m}}``,
+    ``phi_theta -> \phi_{\theta}``: a Greek letter name (see ``_GREEK_LETTERS``),
+    alone or with one ``_`` suffix, becomes its command with the suffix as a subscript
+    (digits as they are, a Greek name as its command, other text upright). One
+    character stays as it is (italic); every other name is upright ``\mathrm{...}``
+    with LaTeX's special characters escaped (``yaw_rate -> \mathrm{yaw\_rate}``).
+    """
+    name = str(name)
+    letter, underscore, suffix = name.partition("_")
+    if letter in _GREEK_LETTERS and (not underscore or suffix):
+        if not underscore:
+            return "\\" + letter
+        if suffix.isascii() and suffix.isdigit():
+            subscript = suffix
+        elif suffix in _GREEK_LETTERS:
+            subscript = "\\" + suffix
+        else:
+            subscript = _upright(suffix)
+        return rf"\{letter}_{{{subscript}}}"
+    if len(name) == 1:
+        return _LATEX_SPECIAL.get(name, name)
+    return _upright(name)
 
 
-def latex_number(value, digits=6):
-    """``0.00125 -> '1.25 \\times 10^{-3}'``; integers without a decimal point."""
+def latex_number(value, digits=LATEX_DIGITS):
+    r"""A number in LaTeX with ``digits`` significant digits.
+
+    ``0.00125 -> '1.25 \times 10^{-3}'``. A value that the digits show exactly keeps
+    its short form (``1``, ``0.05``); a rounded one shows all its digits, trailing
+    zeros included, so ``1.0004 -> '1.000'`` and ``0.050001 -> '0.05000'``: a
+    printed ``1`` always means exactly 1.
+    """
     value = float(value)
     if not math.isfinite(value):
         return r"\infty" if value > 0 else (r"-\infty" if value < 0 else r"\mathrm{NaN}")
     text = f"{value:.{digits}g}"
+    if float(text) != value:
+        # '#' keeps the trailing zeros; with digits=1 it also leaves a bare point ('1.').
+        text = f"{value:#.{digits}g}".replace(".e", "e").rstrip(".")
     if "e" in text:
         mantissa, exponent = text.split("e")
         return rf"{mantissa} \times 10^{{{int(exponent)}}}"
@@ -252,21 +302,24 @@ def _latex(node, digits):
         if node.func.id == "abs":
             return rf"\left|{argument}\right|", _ATOM
         return rf"{_LATEX_FUNCTIONS[node.func.id]}\left({argument}\right)", _ATOM
-    raise ExportError(f"cannot write {ast.unparse(node)!r} as LaTeX: not an allowed construct.")
+    raise ModelFileError(f"cannot write {ast.unparse(node)!r} as LaTeX: not an allowed construct.")
 
 
 def _wrap(text, binding, needed):
     return text if binding >= needed else rf"\left({text}\right)"
 
 
-def to_latex(model, *, digits=6, document=False):
+def to_latex(model, *, digits=LATEX_DIGITS, document=False):
     """The model's equations as a LaTeX ``align*`` environment (needs ``amsmath``).
 
     Parameters
     ----------
     model : Model or path-like
-    digits : int, default=6
-        Significant digits of the coefficients.
+    digits : int, default=LATEX_DIGITS (4)
+        Significant digits of the coefficients and numbers, as in the terminal
+        summary. A rounded number shows its trailing zeros (``1.0004 -> 1.000``);
+        one the digits show exactly keeps its short form (``1``, ``0.05``), see
+        :func:`latex_number`.
     document : bool, default=False
         Wrap the equations in a minimal ``article`` document that compiles on its own.
 
@@ -274,7 +327,8 @@ def to_latex(model, *, digits=6, document=False):
     -------
     str
         One line ``\\dot{name} &= ...`` per state; products are written with a thin
-        space ``\\,``, powers as superscripts, ``log`` as ``\\ln``.
+        space ``\\,``, powers as superscripts, ``log`` as ``\\ln``; names as
+        :func:`latex_name` writes them (Greek letter names as their commands).
     """
     model = _as_model(model)
     trees = dict(_trees(model))
@@ -479,6 +533,36 @@ def to_state_space(model, x_op=None, u_op=None):
 # --------------------------------------------------------------------------- writers
 
 
+def _refuse_non_finite(matrices, fmt):
+    """One located line for the first NaN or infinity in the matrices: JSON cannot hold them.
+
+    With an operating point (``x_op`` in ``matrices``) it is an :class:`ExportError`
+    (choose another point); without one the model's own coefficients overflow
+    float64, a :class:`ModelFileError`.
+    """
+    states, inputs = matrices["states"], matrices["inputs"]
+    found = []  # (where, value, state) of every non-finite entry, in the order A, B, offset, residual
+    for key, columns in (("A", states), ("B", inputs), ("offset", None), ("residual", None)):
+        if key in matrices:
+            values = np.asarray(matrices[key], dtype=float)
+            for index in np.argwhere(~np.isfinite(values)):
+                row = int(index[0])
+                where = (f"{key}[{states[row]}, {columns[int(index[1])]}]" if columns is not None
+                         else f"{key}[{states[row]}]")
+                found.append((where, values[tuple(index)], states[row]))
+    if not found:
+        return
+    where, value, state = found[0]
+    more = f" (and {len(found) - 1} more non-finite entries)" if len(found) > 1 else ""
+    what = f"the {fmt} export has {where} = {value} in the equation of d({state})/dt{more}"
+    if "x_op" in matrices:
+        point = dict(zip(list(states) + list(inputs), np.concatenate([matrices["x_op"], matrices["u_op"]]).tolist()))
+        raise ExportError(f"{what} at the operating point {point}; JSON holds only finite numbers. "
+                          "Choose an operating point where f(x, u) and its slopes are finite.")
+    raise ModelFileError(f"{what}; JSON holds only finite numbers. The model's coefficients "
+                         "overflow float64 there: check the model file.")
+
+
 def _json_document(matrices, kind):
     document = {"format": LINEAR_FORMAT, "kind": kind, "states": matrices["states"], "inputs": matrices["inputs"]}
     if kind == "linear":
@@ -516,17 +600,22 @@ def export_text(model, fmt, *, x_op=None, u_op=None, csv=False):
         return to_python_module(model)
     if fmt == "latex":
         return to_latex(model)
-    if fmt == "linear":
-        matrices, kind = linear_matrices(model), "linear"
-    elif fmt == "linearize":
-        matrices, kind = linearize(model, x_op, u_op), "linearized"
-    else:
-        if csv:
-            raise ExportError("the 'control' export is JSON (A, B, C, D); write it to a .json file.")
-        matrices, kind = _state_space_matrices(model, x_op, u_op)
+    if fmt == "control" and csv:
+        raise ExportError("the 'control' export is JSON (A, B, C, D); write it to a .json file.")
+    # An overflow or NaN is refused below in one located line, so numpy's warning would only repeat it.
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        if fmt == "linear":
+            matrices, kind = linear_matrices(model), "linear"
+        elif fmt == "linearize":
+            matrices, kind = linearize(model, x_op, u_op), "linearized"
+        else:
+            matrices, kind = _state_space_matrices(model, x_op, u_op)
+    _refuse_non_finite(matrices, fmt)
     if csv:
         return _matrices_csv(matrices)
-    return json.dumps(_json_document(matrices, kind), indent=2, allow_nan=False) + "\n"
+    # Characters such as '≈' as they are: the file is UTF-8, as JSON between systems must
+    # be (RFC 8259, section 8.1).
+    return json.dumps(_json_document(matrices, kind), indent=2, allow_nan=False, ensure_ascii=False) + "\n"
 
 
 def write_export(model, fmt, out_path, *, x_op=None, u_op=None):
@@ -543,6 +632,7 @@ def write_export(model, fmt, out_path, *, x_op=None, u_op=None):
         given ``x_op``, linearized; load it with ``control.ss(d["A"], d["B"], d["C"], d["D"])``.
         The matrix formats are JSON (``format: discover-linear/1``), or one CSV table
         ``state, A[...], B[...], offset|residual`` when ``out_path`` ends in ``.csv``.
+        Every file is written as UTF-8; JSON keeps non-ASCII characters as they are.
     out_path : path-like
     x_op, u_op : array-like, optional
         The operating point (needed by ``linearize``; optional for ``control``).
@@ -551,12 +641,21 @@ def write_export(model, fmt, out_path, *, x_op=None, u_op=None):
     -------
     pathlib.Path
         The file written.
+
+    Raises
+    ------
+    ExportError
+        Unknown format, a bad operating point, an output that cannot be written,
+        or a NaN or infinity in the matrices at the operating point.
+    ModelFileError
+        The model file cannot be read, or (without an operating point) its
+        coefficients give a NaN or infinity in the matrices.
     """
     out_path = Path(out_path)
     text = export_text(model, fmt, x_op=x_op, u_op=u_op,
                        csv=out_path.suffix.lower() == ".csv" and fmt in ("linear", "linearize", "control"))
     try:
-        out_path.write_text(text)
+        out_path.write_text(text, encoding="utf-8")
     except OSError as err:
         raise ExportError(f"{out_path}: cannot write the export ({err.strerror or err}).") from None
     return out_path
@@ -573,11 +672,24 @@ def parse_point(text, names, option):
         raise ExportError(
             f"{option} must be comma-separated numbers in the order {', '.join(names)}. Got {text!r}."
         ) from None
+    if not all(math.isfinite(v) for v in values):
+        raise ExportError(f"{option} must be finite numbers (no nan or inf). Got {text!r}.")
     if len(values) != len(names):
         raise ExportError(
             f"{option} must have {len(names)} values (order {', '.join(names) or 'none'}). Got {len(values)}: {text!r}."
         )
     return np.array(values)
+
+
+def _write_stdout(text):
+    """Print an export; as UTF-8 bytes where the console's encoding lacks a character ('≈')."""
+    try:
+        sys.stdout.write(text)
+    except UnicodeEncodeError:
+        # The text stream encodes the whole string before writing, so nothing went out yet.
+        sys.stdout.flush()
+        sys.stdout.buffer.write(text.encode("utf-8"))
+        sys.stdout.buffer.flush()
 
 
 def export_main(args):
@@ -586,6 +698,8 @@ def export_main(args):
     ``args`` has ``model`` (path to model.json), ``to`` (a format of :data:`FORMATS`),
     ``out`` (file to write; None or ``"-"`` prints to standard output), ``x_op`` and
     ``u_op`` (comma-separated numbers in state / input order, or None).
+    Errors in these arguments raise :class:`ExportError` (exit code 7), a model
+    file that cannot be read :class:`ModelFileError` (exit code 5).
     """
     model = load_model(args.model)
     x_op = parse_point(args.x_op, model.state_names, "--x-op")
@@ -594,7 +708,7 @@ def export_main(args):
         raise ExportError(f"--to linearize needs --x-op (order {', '.join(model.state_names)})"
                           + (f" and --u-op (order {', '.join(model.input_names)})." if model.input_names else "."))
     if args.out is None or args.out == "-":
-        sys.stdout.write(export_text(model, args.to, x_op=x_op, u_op=u_op))
+        _write_stdout(export_text(model, args.to, x_op=x_op, u_op=u_op))
         return 0
     target = write_export(model, args.to, args.out, x_op=x_op, u_op=u_op)
     print(f"Wrote the {args.to} export of {args.model} to {target}")

@@ -6,6 +6,7 @@ coefficients, so every exported matrix can be checked against its closed form.
 
 import ast
 import importlib.util
+import io
 import json
 import re
 import shutil
@@ -20,7 +21,10 @@ from scipy.integrate import solve_ivp
 
 import discover
 from discover import export
+from discover.cli import EXAMPLES, main
+from discover.exceptions import DiscoverError, ExportError, ModelFileError
 from discover.expressions import parse_expression
+from discover.report import format_equation
 from discover.symbolic import derivative
 from systems import BETA, C_FARAD, L_HENRY, LORENZ_INPUT_TRUTH, R_OHM, RHO, SIGMA
 
@@ -59,6 +63,17 @@ def rlc_model():
         [0.0, 1.0 / L_HENRY],
     ])
     return discover.Model(("v", "i"), ("vin",), ("i", "v", "vin"), coef)
+
+
+def pendulum_model():
+    # Damped pendulum with a torque input, dθ/dt = ω, dω/dt = -(g/l) sin θ - c ω + τ
+    # (common practice); g/l = 9.81 and c = 0.5 are ours. Greek state and input names.
+    coef = np.array([
+        [1.0, -0.5],
+        [0.0, -9.81],
+        [0.0, 1.0],
+    ])
+    return discover.Model(("theta", "omega_m"), ("tau_1",), ("omega_m", "sin(theta)", "tau_1"), coef)
 
 
 def function_model():
@@ -335,7 +350,7 @@ def _balanced(text):
     return depth == 0
 
 
-@pytest.mark.parametrize("make", [lorenz_model, ship_model, function_model])
+@pytest.mark.parametrize("make", [lorenz_model, ship_model, function_model, pendulum_model])
 def test_latex_is_structurally_sound(make):
     model = make()
     text = export.to_latex(model)
@@ -347,7 +362,9 @@ def test_latex_is_structurally_sound(make):
     for line, state in zip(lines, model.state_names):
         assert line.count("\\dot{") == 1
         assert line.startswith("\\dot{" + export.latex_name(state) + "}")
-    assert re.search(r"(?<!\\)_", text) is None  # every underscore escaped
+    # Every underscore escaped, except the subscript of a Greek letter (\theta_{1}).
+    assert re.search(r"(?<!\\)_(?!\{)", text) is None
+    assert len(re.findall(r"(?<!\\)_\{", text)) == len(re.findall(r"\\(?:theta|omega|tau)_\{", text))
 
 
 def test_latex_of_the_ship_reads_as_written():
@@ -431,3 +448,187 @@ def test_state_space_without_python_control_says_how_to_install():
         pytest.skip("python-control is installed")
     with pytest.raises(export.ExportError, match="pip install control"):
         export.to_state_space(rlc_model())
+
+
+# --------------------------------------------------------------------------- error classes and exit codes
+
+
+def _saved(model, tmp_path, name="model.json"):
+    path = tmp_path / name
+    model.save(path)
+    return str(path)
+
+
+def _one_error_line(capsys):
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1, err
+    assert err.startswith("discover: error: ")
+    return err
+
+
+def test_export_arguments_have_their_own_error_class():
+    # Arguments of the command (operating point, format, output path) are not model-file problems.
+    assert issubclass(ExportError, DiscoverError) and not issubclass(ExportError, ModelFileError)
+    assert export.ExportError is ExportError and issubclass(export.NonlinearModelError, ExportError)
+    assert ExportError.exit_code == 7 and ModelFileError.exit_code == 5
+    codes = [cls.exit_code for cls in DiscoverError.__subclasses__()]
+    assert len(codes) == len(set(codes))  # each family its own status
+    assert "7 (export arguments" in EXAMPLES  # the exit codes listed in `discover --help`
+
+
+@pytest.mark.parametrize("arguments, code, message", [
+    (["--to", "linearize", "--x-op=1", "--u-op=0"], 7,
+     "--x-op must have 2 values (order heading, yaw_rate). Got 1"),
+    (["--to", "linearize", "--x-op=0,nan", "--u-op=0"], 7,
+     "--x-op must be finite numbers (no nan or inf). Got '0,nan'"),
+    (["--to", "linearize", "--x-op=0,0", "--u-op=left"], 7,
+     "--u-op must be comma-separated numbers in the order rudder"),
+    (["--to", "linearize"], 7, "--to linearize needs --x-op (order heading, yaw_rate) and --u-op (order rudder)"),
+    (["--to", "linear"], 7, "term 'yaw_rate**3' of d(yaw_rate)/dt is not linear"),
+    (["--to", "control", "--out", "{tmp}/ss.csv"], 7, "the 'control' export is JSON (A, B, C, D)"),
+    (["--to", "python", "--out", "{tmp}/no/such/folder/m.py"], 7, "cannot write the export"),
+])
+def test_export_command_exit_codes_for_bad_arguments(arguments, code, message, tmp_path, capsys):
+    path = _saved(ship_model(), tmp_path)
+    assert main(["export", path] + [a.format(tmp=tmp_path) for a in arguments]) == code
+    assert message in _one_error_line(capsys)
+
+
+def test_export_command_keeps_model_file_problems_as_such(tmp_path, capsys):
+    assert main(["export", str(tmp_path / "none.json"), "--to", "python"]) == 5
+    assert "model file not found" in _one_error_line(capsys)
+    broken = tmp_path / "broken.json"
+    broken.write_text("{ not json")
+    assert main(["export", str(broken), "--to", "latex"]) == 5
+    assert str(broken) in _one_error_line(capsys)
+
+
+def test_export_command_succeeds_with_status_0(tmp_path, capsys):
+    path = _saved(ship_model(), tmp_path)
+    target = tmp_path / "s.json"
+    assert main(["export", path, "--to", "linearize", "--x-op=0,0", "--u-op=0", "--out", str(target)]) == 0
+    assert "Wrote the linearize export" in capsys.readouterr().out
+    assert json.loads(target.read_text(encoding="utf-8"))["A"][1][1] == -1.0 / T_SHIP
+
+
+# --------------------------------------------------------------------------- LaTeX names and numbers
+
+
+@pytest.mark.parametrize("name, latex", [
+    # Greek letter commands of LaTeX2e (the LaTeX2e unofficial reference manual, "Greek letters",
+    # and the AMS Short Math Guide, "Greek letters"; from memory): lowercase alpha ... omega,
+    # capitals only where they differ from Latin letters; there is no \omicron command.
+    ("theta", r"\theta"), ("alpha", r"\alpha"), ("omega", r"\omega"), ("upsilon", r"\upsilon"),
+    ("Gamma", r"\Gamma"), ("Omega", r"\Omega"), ("Xi", r"\Xi"),
+    ("theta_1", r"\theta_{1}"), ("theta_12", r"\theta_{12}"), ("omega_m", r"\omega_{\mathrm{m}}"),
+    ("phi_theta", r"\phi_{\theta}"), ("psi_ref_2", r"\psi_{\mathrm{ref\_2}}"),
+    # Not Greek letter commands: stay upright text, underscores escaped as before.
+    ("Alpha", r"\mathrm{Alpha}"), ("omicron", r"\mathrm{omicron}"), ("theta1", r"\mathrm{theta1}"),
+    ("theta_", r"\mathrm{theta\_}"), ("thetas", r"\mathrm{thetas}"), ("yaw_rate", r"\mathrm{yaw\_rate}"),
+    ("x", "x"), ("u_2", r"\mathrm{u\_2}"),
+])
+def test_latex_names(name, latex):
+    assert export.latex_name(name) == latex
+
+
+def test_latex_of_the_pendulum_uses_greek_letters():
+    text = export.to_latex(pendulum_model())
+    assert r"\dot{\theta} &= 1 \, \omega_{\mathrm{m}}" in text
+    assert (r"\dot{\omega_{\mathrm{m}}} &= -0.5 \, \omega_{\mathrm{m}} - 9.81 \, \sin\left(\theta\right) "
+            r"+ 1 \, \tau_{1}") in text
+    assert "mathrm{theta}" not in text and "mathrm{omega" not in text
+
+
+@pytest.mark.parametrize("coefficient", [0.123456, -12.34567, 987.654321, 3.14159265e-5, 2.718281828e7, 0.5, 42.0])
+def test_latex_coefficients_have_the_digits_of_the_terminal_summary(coefficient):
+    # The terminal summary (report.format_equation) is the reference for the number of digits:
+    # the LaTeX shows the same rounded value, with trailing zeros where it was rounded.
+    terminal = format_equation("x", [("x", coefficient, {})])
+    printed = re.fullmatch(r"d\(x\)/dt = (-?[0-9.e+-]+)·x", terminal).group(1)
+    model = discover.Model(("x",), (), ("x",), np.array([[coefficient]]))
+    latex = re.search(r"&= (.*) \\, x", export.to_latex(model)).group(1)
+    mantissa, _, exponent = latex.partition(r" \times 10^")
+    assert float(mantissa + ("e" + exponent.strip("{}") if exponent else "")) == float(printed)
+    if float(printed) != coefficient:  # rounded: as many significant digits as the terminal shows
+        digits = len(mantissa.lstrip("-").replace(".", "").lstrip("0"))
+        assert digits == export.LATEX_DIGITS
+
+
+@pytest.mark.parametrize("value, latex", [
+    # A printed "1" means exactly 1; a rounded 1 shows its digits (our choice, see latex_number).
+    (1.0004, "1.000"), (1.0, "1"), (0.99996, "1.000"), (0.05, "0.05"), (0.050001, "0.05000"),
+    (2.5e-7, r"2.5 \times 10^{-7}"), (1.00004e-7, r"1.000 \times 10^{-7}"), (-3.0, "-3"),
+])
+def test_latex_numbers_show_rounding(value, latex):
+    assert export.latex_number(value) == latex
+
+
+def test_latex_coefficient_near_one_reads_as_rounded():
+    model = discover.Model(("omega",), (), ("omega", "1"), np.array([[1.0004], [-1.0]]))
+    assert r"\dot{\omega} &= 1.000 \, \omega - 1" in export.to_latex(model)
+
+
+# --------------------------------------------------------------------------- UTF-8 JSON, finite numbers
+
+
+def test_json_exports_are_utf8_without_escapes(tmp_path):
+    model = discover.Model(("θ", "omega"), ("τ",), ("omega", "θ", "τ"),
+                           np.array([[1.0, 0.0], [0.0, -2.0], [0.0, 1.0]]))
+    path = _saved(model, tmp_path)
+    for fmt, extra in [("linearize", ["--x-op=0,0", "--u-op=0"]), ("linear", []), ("control", [])]:
+        target = tmp_path / f"{fmt}.json"
+        assert main(["export", path, "--to", fmt, "--out", str(target)] + extra) == 0
+        raw = target.read_bytes()
+        assert b"\\u" not in raw  # no \uXXXX escapes (json.dumps' ensure_ascii default)
+        document = json.loads(raw.decode("utf-8"))
+        assert document["states"] == ["θ", "omega"] and document["inputs"] == ["τ"]
+        assert '"θ"'.encode() in raw
+    assert "≈".encode() in (tmp_path / "linearize.json").read_bytes()
+    table = tmp_path / "linear.csv"
+    assert main(["export", path, "--to", "linear", "--out", str(table)]) == 0
+    assert list(pd.read_csv(table, encoding="utf-8").columns) == ["state", "A[θ]", "A[omega]", "B[τ]", "offset"]
+
+
+def test_export_to_an_ascii_console_falls_back_to_utf8_bytes(tmp_path, monkeypatch):
+    path = _saved(ship_model(), tmp_path)
+    console = io.TextIOWrapper(io.BytesIO(), encoding="ascii")
+    monkeypatch.setattr("sys.stdout", console)
+    args = SimpleNamespace(model=path, to="linearize", out=None, x_op="0, 0", u_op="0")
+    assert export.export_main(args) == 0
+    console.flush()
+    assert json.loads(console.buffer.getvalue().decode("utf-8"))["equation"].startswith("dx/dt ≈ residual")
+
+
+def overflow_model():
+    # 1e308 and 2·1e308 add up past the largest float64, about 1.798e308 (IEEE 754 binary64).
+    return discover.Model(("x", "y"), ("u",), ("x", "2*x", "u"), np.array([[1e308, 0.0], [1e308, 0.0], [0.0, 1.0]]))
+
+
+@pytest.mark.filterwarnings("error::RuntimeWarning")  # one line of ours, no numpy overflow warning
+@pytest.mark.parametrize("out", [None, "m.json", "m.csv"])
+def test_linear_export_refuses_non_finite_matrices(out, tmp_path, capsys):
+    path = _saved(overflow_model(), tmp_path)
+    extra = ["--out", str(tmp_path / out)] if out else []
+    assert main(["export", path, "--to", "linear"] + extra) == 5  # the model's coefficients
+    err = _one_error_line(capsys)
+    assert "the linear export has A[x, x] = inf in the equation of d(x)/dt; JSON holds only finite numbers" in err
+    assert out is None or not (tmp_path / out).exists()
+
+
+@pytest.mark.filterwarnings("error::RuntimeWarning")
+def test_linearize_refuses_non_finite_residual_at_the_operating_point(tmp_path, capsys):
+    # d(x**2)/dx = 2x is finite at x = 1e5, the residual 1e300 · 1e10 is not.
+    model = discover.Model(("x",), ("u",), ("x**2", "u"), np.array([[1e300], [1.0]]))
+    path = _saved(model, tmp_path)
+    target = tmp_path / "l.json"
+    assert main(["export", path, "--to", "linearize", "--x-op=1e5", "--u-op=0", "--out", str(target)]) == 7
+    assert ("the linearize export has residual[x] = inf in the equation of d(x)/dt at the operating point "
+            "{'x': 100000.0, 'u': 0.0}; JSON holds only finite numbers. Choose an operating point"
+            ) in _one_error_line(capsys)
+    assert not target.exists()
+    assert main(["export", path, "--to", "control", "--x-op=1e155", "--u-op=0"]) == 7
+    assert "the control export has A[x, x] = inf" in _one_error_line(capsys)
+    with pytest.raises(ExportError, match=r"B\[x, u\] = nan .*\(and 1 more non-finite entries\)"):
+        export._refuse_non_finite({"states": ["x"], "inputs": ["u"], "A": np.zeros((1, 1)),
+                                   "B": np.array([[np.nan]]), "residual": np.array([np.inf]),
+                                   "x_op": np.zeros(1), "u_op": np.zeros(1)}, "linearize")
