@@ -7,13 +7,15 @@ parser of :mod:`discover.expressions`.
 
 from __future__ import annotations
 
+import ast
+import functools
 import itertools
 from dataclasses import dataclass
 
 import numpy as np
 
 from .exceptions import ConfigError
-from .expressions import parse_expression
+from .expressions import FUNCTIONS, evaluate_tree, parse_expression
 
 
 @dataclass(frozen=True)
@@ -47,15 +49,28 @@ class Library:
 
         With ``append`` (n_samples, n_extra), returns [Θ append] in one allocation, the
         layout the Gram products want, with no copy of Θ.
+
+        For float64 x and u the terms are evaluated together (:class:`_SharedPlan`): a
+        subexpression common to several terms is computed once, and products and sums a
+        block of rows at a time straight into Θ. Every value has the bits the term's own
+        expression gives (the same operations on the same operands, in the same order).
         """
         columns = columns_of(self.state_names, self.input_names, x, u)
         extra = 0 if append is None else append.shape[1]
         theta = np.empty((x.shape[0], len(self.terms) + extra))
+        if _plan_applies(columns, x.shape[0]):
+            self._plan.fill(theta, columns, append if extra else None)
+            return theta
+        # Other dtypes compute in their own precision, as each expression does alone.
         for j, term in enumerate(self.terms):
             theta[:, j] = term.evaluate(columns)
         if extra:
             theta[:, len(self.terms):] = append
         return theta
+
+    @functools.cached_property
+    def _plan(self):
+        return _SharedPlan([term.expression for term in self.terms])
 
     def subset(self, indices):
         return Library(self.state_names, self.input_names, tuple(self.terms[i] for i in indices))
@@ -239,3 +254,212 @@ class TermEvaluator:
             for j, expression in self.other:
                 theta[:, j] = expression.evaluate(columns)
         return theta
+
+
+#: Bytes of [Θ append] (and scratch rows) in one block of rows of the shared plan: small
+#: enough to stay in one core's cache while every term writes its column of the block, so
+#: each row of Θ goes out to memory once (a column written over all rows at once pulls
+#: every cache line of Θ in again for each column). Measured in benchmarks/library.py.
+BLOCK_BYTES = 1 << 20
+
+#: Terms computed on whole columns (functions, general powers) are held until they are
+#: copied into Θ block by block while they take at most this fraction of Θ's bytes; the
+#: rest go into Θ a column at a time, slower but with no memory beyond one column.
+KEPT_FRACTION = 0.5
+
+# Sums, differences, products, quotients and negation are correctly rounded element by
+# element (IEEE 754): any block of rows and any memory layout give the same bits. Functions
+# and general powers come from math libraries whose vector and scalar code may differ; the
+# plan runs them as an expression alone runs them: on whole columns, with operands of the
+# same layout (a view into x or u, or a fresh array).
+_EXACT = {"add": np.add, "sub": np.subtract, "mul": np.multiply, "div": np.divide, "neg": np.negative}
+_BINARY_KINDS = {ast.Add: "add", ast.Sub: "sub", ast.Mult: "mul", ast.Div: "div"}
+_WHOLE = ("call", "pow")
+
+
+@dataclass(frozen=True)
+class _Node:
+    """One operation of a shared plan: ``kind`` on the nodes ``operands``.
+
+    ``what`` is the column name ("col"), the constant's tree ("const") or the function
+    name ("call").
+    """
+
+    kind: str
+    operands: tuple = ()
+    what: object = None
+
+
+def _plan_applies(columns, n_samples):
+    """Whether the shared plan gives the per-term values: float64 columns of one length."""
+    return bool(columns) and all(
+        isinstance(c, np.ndarray) and c.dtype == np.float64 and c.shape == (n_samples,)
+        for c in columns.values()
+    )
+
+
+def _has_names(tree):
+    return any(isinstance(node, ast.Name) for node in ast.walk(tree))
+
+
+def _repeats(exponent_tree):
+    """Factors multiplied for ``base ** exponent``, decided as ``expressions._power`` does; 0 for pow."""
+    if _has_names(exponent_tree):
+        return 0
+    with np.errstate(all="ignore"):
+        exponent = evaluate_tree(exponent_tree, {})
+    if np.ndim(exponent) == 0 and float(exponent).is_integer() and 1 <= exponent <= 8:
+        return int(exponent)
+    return 0
+
+
+class _SharedPlan:
+    """The terms of a library as one list of operations, common subexpressions once.
+
+    A node is an operation on earlier nodes, keyed by the operation and its operands, so
+    ``x*y`` inside ``x*y*z`` and the term ``x*y`` are one node. ``x**3`` becomes
+    ``(x*x)*x``, the multiplications ``expressions._power`` performs, in its order, so a
+    monomial reuses the lower-degree node its own expression multiplies. Operands are
+    never reordered or regrouped: every node has the bits of the plain evaluation.
+
+    Parameters
+    ----------
+    expressions : sequence of parsed expressions (:class:`discover.expressions.Expression`)
+    """
+
+    def __init__(self, expressions):
+        self.nodes, self._ids = [], {}
+        self.roots = [self._node(expression._tree) for expression in expressions]
+        self.columns_of_node = {}  # node -> the columns of Θ it fills (more than one if repeated)
+        for j, i in enumerate(self.roots):
+            self.columns_of_node.setdefault(i, []).append(j)
+        # Functions and general powers, and every operation they read, run on whole columns.
+        whole = [node.kind in _WHOLE for node in self.nodes]
+        for i in reversed(range(len(self.nodes))):  # readers come after what they read
+            if whole[i]:
+                for o in self.nodes[i].operands:
+                    whole[o] = self.nodes[o].kind not in ("col", "const")
+        self.whole_steps = [i for i, w in enumerate(whole) if w]
+        self.block_steps = [i for i, node in enumerate(self.nodes) if node.kind in _EXACT and not whole[i]]
+        self.whole_reads = [0] * len(self.nodes)
+        for i in self.whole_steps:
+            for o in self.nodes[i].operands:
+                self.whole_reads[o] += 1
+        read_in_blocks = {o for i in self.block_steps for o in self.nodes[i].operands}
+        # Whole values that blocks read and that are in no column of Θ: kept to the end.
+        self.kept = {i for i in self.whole_steps if i in read_in_blocks and i not in self.columns_of_node}
+        in_scratch = [i for i in self.block_steps if i not in self.columns_of_node]
+        self.scratch_row = {i: row for row, i in enumerate(in_scratch)}
+
+    def _add(self, kind, operands=(), what=None, key=None):
+        node_key = (kind, operands, what if key is None else key)
+        if node_key not in self._ids:
+            self._ids[node_key] = len(self.nodes)
+            self.nodes.append(_Node(kind, operands, what))
+        return self._ids[node_key]
+
+    def _node(self, tree):
+        """Node id of a checked expression tree, built as ``expressions.evaluate_tree`` computes it."""
+        if not _has_names(tree):
+            return self._add("const", what=tree, key=ast.dump(tree))
+        if isinstance(tree, ast.Name):
+            return self._add("col", what=tree.id)
+        if isinstance(tree, ast.UnaryOp):
+            operand = self._node(tree.operand)
+            return self._add("neg", (operand,)) if isinstance(tree.op, ast.USub) else operand
+        if isinstance(tree, ast.Call):
+            return self._add("call", (self._node(tree.args[0]),), what=tree.func.id)
+        left = self._node(tree.left)
+        if isinstance(tree.op, ast.Pow):
+            times = _repeats(tree.right)
+            if not times:
+                return self._add("pow", (left, self._node(tree.right)))
+            result = left
+            for _ in range(times - 1):
+                result = self._add("mul", (result, left))
+            return result
+        return self._add(_BINARY_KINDS[type(tree.op)], (left, self._node(tree.right)))
+
+    def fill(self, theta, columns, append=None):
+        """Write Θ into ``theta[:, :n_terms]`` and ``append`` after it.
+
+        Parameters
+        ----------
+        theta : ndarray of shape (n_samples, n_terms + n_extra), float64, written in place
+        columns : dict of str to ndarray of shape (n_samples,), float64
+        append : ndarray of shape (n_samples, n_extra) or None
+        """
+        values = {i: evaluate_tree(node.what, {}) if node.kind == "const" else columns[node.what]
+                  for i, node in enumerate(self.nodes) if node.kind in ("const", "col")}
+        reads_left = list(self.whole_reads)
+        # Whole-column terms are copied into Θ block by block (each row of Θ written once)
+        # while they take at most KEPT_FRACTION of Θ's bytes; beyond that, column by column.
+        copied_in_blocks, room = set(), KEPT_FRACTION * theta.nbytes
+        for i in self.whole_steps:
+            value = self._whole(self.nodes[i], values)
+            for o in self.nodes[i].operands:
+                reads_left[o] -= 1
+                if not (reads_left[o] or o in self.kept or o in copied_in_blocks
+                        or self.nodes[o].kind in ("col", "const")):
+                    del values[o]  # freed after its last whole read
+            if i in self.columns_of_node:
+                if value.nbytes <= room:
+                    copied_in_blocks.add(i)
+                    room -= value.nbytes
+                else:
+                    for j in self.columns_of_node[i]:
+                        theta[:, j] = value
+            if reads_left[i] or i in self.kept or i in copied_in_blocks:
+                values[i] = value
+        self._fill_blocks(theta, values, copied_in_blocks, append)
+
+    def _fill_blocks(self, theta, values, copied_in_blocks, append):
+        """The exact operations, leaves and ``append``, a block of rows at a time."""
+        n_samples, n_terms = theta.shape[0], len(self.roots)
+        rows = max(64, BLOCK_BYTES // (8 * (theta.shape[1] + len(self.scratch_row))))
+        scratch = np.empty((len(self.scratch_row), min(rows, n_samples)))
+        scalars = {i: v for i, v in values.items() if np.ndim(v) == 0}
+        arrays = [(i, v) for i, v in values.items() if np.ndim(v)]  # columns of x and u, whole values
+        # Where each node lives in a block: its (first) column of Θ, or a scratch row.
+        in_theta = [(i, js[0]) for i, js in self.columns_of_node.items()
+                    if i not in values or i in copied_in_blocks]
+        copies = [(i, js) for i, js in self.columns_of_node.items() if i in values]  # leaves, whole terms
+        repeats = [(i, self.columns_of_node[i][1:]) for i in self.block_steps
+                   if len(self.columns_of_node.get(i, ())) > 1]
+        program = [(_EXACT[self.nodes[i].kind], self.nodes[i].operands, i) for i in self.block_steps]
+        for start in range(0, n_samples, rows):
+            stop = min(start + rows, n_samples)
+            block = theta[start:stop]
+            by_column = block.T  # by_column[j] is column j of the block (a view)
+            here = dict(scalars)  # node -> its values on this block's rows
+            here.update((i, v[start:stop]) for i, v in arrays)
+            for i, j in in_theta:
+                here[i] = by_column[j]
+            for i, r in self.scratch_row.items():
+                here[i] = scratch[r, : stop - start]
+            for i, js in copies:
+                value = here[i] if i in scalars else values[i][start:stop]
+                for j in js:
+                    by_column[j] = value
+            for function, operands, i in program:
+                function(*[here[o] for o in operands], out=here[i])
+            for i, js in repeats:
+                for j in js:
+                    by_column[j] = here[i]
+            if append is not None:
+                block[:, n_terms:] = append[start:stop]
+
+    @staticmethod
+    def _whole(node, values):
+        """One function or operation on whole columns, with ``evaluate_tree``'s numpy calls."""
+        args = [values[o] for o in node.operands]
+        if node.kind == "call":
+            return FUNCTIONS[node.what](args[0])
+        if node.kind == "pow":
+            return np.power(*args)
+        if node.kind == "div":
+            return np.divide(*args)
+        if node.kind == "neg":
+            return -args[0]
+        left, right = args
+        return left + right if node.kind == "add" else left - right if node.kind == "sub" else left * right
