@@ -455,19 +455,9 @@ def _resolved_options(method, options):
 def default_trim(method, options):
     """Samples to drop at each end of a run after differentiating it.
 
-    Parameters
-    ----------
-    method : str
-        A key of :data:`METHODS`.
-    options : dict
-        The method's keyword options as configured; missing ones take the
-        function's defaults.
-
-    Returns
-    -------
-    int
-        Number of samples to drop at the start and, again, at the end (reasons
-        beside :data:`METHODS`).
+    ``method`` is a key of :data:`METHODS`; missing ``options`` take the function's
+    defaults. Returns the samples to drop at the start and, again, at the end
+    (reasons beside :data:`METHODS`).
 
     Raises
     ------

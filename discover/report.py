@@ -307,3 +307,104 @@ def plot_top_candidates(result, top):
     fig.suptitle(f"top candidates on held-out run {item.run}", fontsize=10)
     fig.tight_layout()
     return fig
+
+
+def plot_run_overview(run, state_names, input_names):
+    """A run's states and inputs over time, one panel per column (grey scale).
+
+    States are solid black, inputs dashed grey (drawn as steps when the recorded
+    input mostly holds its values, as a logged command does).
+
+    Parameters
+    ----------
+    run : discover.data.Run
+        ``t`` of shape (n_samples,), ``x`` of shape (n_samples, n_states), ``u`` of
+        shape (n_samples, n_inputs).
+    state_names, input_names : sequence of str
+        Axis labels.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from .simulate import guess_interpolation
+
+    plt = _pyplot()
+    names = [(name, run.x[:, i], "state") for i, name in enumerate(state_names)]
+    names += [(name, run.u[:, j], "input") for j, name in enumerate(input_names)]
+    n = max(1, len(names))
+    fig, axes = plt.subplots(n, 1, figsize=(7, 1.5 * n + 0.7), sharex=True, squeeze=False)
+    # A held command is drawn as steps, as the simulation would hold it.
+    held = guess_interpolation(run.u) == "zoh"
+    for ax, (name, values, kind) in zip(axes[:, 0], names):
+        if kind == "state":
+            ax.plot(run.t, values, color="black", linewidth=1.0)
+        else:
+            ax.plot(run.t, values, color="0.35", linewidth=1.0, linestyle="--",
+                    drawstyle="steps-post" if held else "default")
+        ax.set_ylabel(f"{name}\n({kind})", fontsize=8)
+        ax.tick_params(labelsize=7)
+        ax.grid(True, color="0.9", linewidth=0.6)
+    axes[-1, 0].set_xlabel("time")
+    fig.suptitle(f"run {run.name}: {len(run.t)} samples", fontsize=10)
+    fig.tight_layout()
+    return fig
+
+
+def plot_derivative_check(smoothed_run, raw_t, raw_x, state_names):
+    """Smoothed against raw states of one run, their difference, and the derivative.
+
+    Left: the raw samples (grey dots) and the smoothed states the derivatives come
+    from (black line). Middle: raw minus smoothed on the samples kept after end
+    trimming; it should look like measurement noise, with no trace of the signal
+    left in it. Right: the derivative estimate (black line) over central differences
+    of the raw samples (grey dots, :func:`numpy.gradient`), which are noisy but unbiased.
+
+    Parameters
+    ----------
+    smoothed_run : discover.pipeline.Smoothed
+        ``t`` of shape (n_kept,), ``x``, ``x_dot`` and ``x_raw`` of shape (n_kept, n_states).
+    raw_t : ndarray of shape (n_samples,)
+    raw_x : ndarray of shape (n_samples, n_states)
+        The run as loaded, ends included.
+    state_names : sequence of str
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    plt = _pyplot()
+    n = len(state_names)
+    fig, axes = plt.subplots(n, 3, figsize=(11, 2.0 * n + 0.7), sharex=True, squeeze=False,
+                             gridspec_kw={"width_ratios": [3, 2, 3]})
+    residual = smoothed_run.x_raw - smoothed_run.x
+    raw_slope = np.gradient(raw_x, raw_t, axis=0) if len(raw_t) > 1 else np.zeros_like(raw_x)
+    for i, state in enumerate(state_names):
+        left, middle, right = axes[i]
+        left.plot(raw_t, raw_x[:, i], linestyle="none", marker=".", markersize=2.5, color="0.6", label="raw")
+        left.plot(smoothed_run.t, smoothed_run.x[:, i], color="black", linewidth=1.0, label="smoothed")
+        left.set_ylabel(state, fontsize=8)
+        middle.plot(smoothed_run.t, residual[:, i], color="0.3", linewidth=0.6)
+        middle.axhline(0.0, color="black", linewidth=0.6)
+        middle.set_ylabel(f"raw − smoothed\n{state}", fontsize=8)
+        right.plot(raw_t, raw_slope[:, i], linestyle="none", marker=".", markersize=2.0, color="0.65",
+                   label="central differences of raw")
+        right.plot(smoothed_run.t, smoothed_run.x_dot[:, i], color="black", linewidth=1.0, label="estimate")
+        right.set_ylabel(f"d({state})/dt", fontsize=8)
+        # Keep the estimate readable: the raw differences may be far noisier.
+        low, high = np.nanpercentile(smoothed_run.x_dot[:, i], [0, 100]) if len(smoothed_run.t) else (0, 0)
+        pad = 0.5 * (high - low) if high > low else 1.0
+        right.set_ylim(low - pad, high + pad)
+        for ax in (left, middle, right):
+            ax.tick_params(labelsize=7)
+            ax.grid(True, color="0.9", linewidth=0.6)
+    axes[0, 0].legend(fontsize=7, loc="best", markerscale=3)
+    axes[0, 2].legend(fontsize=7, loc="best", markerscale=3)
+    for ax in axes[-1]:
+        ax.set_xlabel("time")
+    fig.suptitle(f"derivative check on run {smoothed_run.name}", fontsize=10)
+    fig.tight_layout()
+    return fig
+
+
+# --------------------------------------------------------------------------- sections

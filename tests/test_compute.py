@@ -12,10 +12,7 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 def bioreactor(**compute):
-    try:
-        import tomllib
-    except ModuleNotFoundError:  # Python 3.10
-        import tomli as tomllib
+    import tomllib
     raw = tomllib.loads((ROOT / "configs" / "bioreactor.toml").read_text())
     raw["data"]["files"] = [str(ROOT / "configs" / f) for f in raw["data"]["files"]]
     raw["bootstrap"] = {"members": 40, "bands": False}

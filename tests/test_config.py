@@ -5,10 +5,7 @@ import pytest
 from discover.config import SCHEMA, load_config, to_toml, validate
 from discover.exceptions import ConfigError
 
-try:
-    import tomllib
-except ModuleNotFoundError:  # Python 3.10
-    import tomli as tomllib
+import tomllib
 
 BASE = {"data": {"files": ["*.csv"], "states": ["x"], "inputs": ["u"]}}
 

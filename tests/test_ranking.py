@@ -123,5 +123,25 @@ def test_rank_command_adds_hypotheses_without_changing_earlier_rows(tmp_path, ca
     merged = after.set_index("candidate").loc[before["candidate"]]
     np.testing.assert_allclose(merged["aicc"], before["aicc"].to_numpy())
     assert after.iloc[0]["candidate"] == before.iloc[0]["candidate"]
-    # The same name again is refused with the file named.
-    assert main(["rank", str(out), str(out / "ranking_updated.csv")]) == 2
+    # A name already in ranking.csv is refused with the file named (not a TOML error).
+    again = tmp_path / "again.toml"
+    again.write_text('[[ranking.hypotheses]]\nname = "no cubic damping"\nyaw_rate = ["rudder"]\n')
+    capsys.readouterr()
+    assert main(["rank", str(out), str(again)]) == 2
+    err = capsys.readouterr().err
+    assert "are already in" in err and "ranking.csv" in err and "not valid TOML" not in err
+
+
+def test_simulate_reproduces_the_held_out_metrics_of_the_run(tmp_path, capsys):
+    # The same initial-state rule, tolerances, limits and interpolation as 'discover run'.
+    out = tmp_path / "ship"
+    assert main(["run", str(ROOT / "configs" / "ship.toml"), "--out", str(out)]) == 0
+    capsys.readouterr()
+    run_file = ROOT / "data_demo" / "ship" / "heldout_sine.csv"
+    assert main(["simulate", str(out / "model.json"), str(run_file)]) == 0
+    printed = capsys.readouterr().out
+    metrics = pd.read_csv(out / "heldout_metrics.csv")
+    fits = ", ".join(f"{r.state} {r.fit_percent:.1f} %" for r in metrics.itertuples())
+    assert f"heldout_sine: fit {fits}" in printed
+    rmse = ", ".join(f"{r.state} {r.rmse:.4g}" for r in metrics.itertuples())
+    assert f"heldout_sine: RMSE {rmse}" in printed and "Note:" not in printed

@@ -19,10 +19,7 @@ import discover
 import discover.smoothing
 from discover import html_report
 
-try:
-    import tomllib
-except ModuleNotFoundError:  # Python 3.10
-    import tomli as tomllib
+import tomllib
 
 ROOT = Path(__file__).resolve().parents[1]
 CONFIGS = ROOT / "configs"

@@ -20,7 +20,7 @@ import pytest
 import discover
 from discover import simulate as sim_module
 from discover.cli import main
-from discover.exceptions import ConfigError, DataError, ExpressionError, ModelFileError
+from discover.exceptions import ConfigError, ExpressionError, ModelFileError
 from discover.expressions import parse_expression
 from discover.model import from_dict, load_model
 

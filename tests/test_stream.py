@@ -16,10 +16,7 @@ ROOT = Path(__file__).resolve().parents[1]
 
 
 def ship(chunk_rows=None, **derivatives):
-    try:
-        import tomllib
-    except ModuleNotFoundError:  # Python 3.10
-        import tomli as tomllib
+    import tomllib
     raw = tomllib.loads((ROOT / "configs" / "ship.toml").read_text())
     raw["data"]["files"] = [str(ROOT / "configs" / f) for f in raw["data"]["files"]]
     raw["data"]["chunk_rows"] = chunk_rows
