@@ -256,10 +256,10 @@ class TermEvaluator:
         return theta
 
 
-#: Bytes of [Θ append] (and scratch rows) in one block of rows of the shared plan: small
-#: enough to stay in one core's cache while every term writes its column of the block, so
-#: each row of Θ goes out to memory once (a column written over all rows at once pulls
-#: every cache line of Θ in again for each column). Measured in benchmarks/library.py.
+#: Bytes of [Θ append] plus scratch in one block of rows of the shared plan: small enough
+#: to stay in one core's cache while every term of the block is computed, so each row of Θ
+#: goes out to memory once (a column written over all rows at once pulls every cache line
+#: of Θ in again for each column). Measured in benchmarks/library.py (--block-bytes).
 BLOCK_BYTES = 1 << 20
 
 #: Terms computed on whole columns (functions, general powers) are held until they are
@@ -411,41 +411,47 @@ class _SharedPlan:
                         theta[:, j] = value
             if reads_left[i] or i in self.kept or i in copied_in_blocks:
                 values[i] = value
-        self._fill_blocks(theta, values, copied_in_blocks, append)
+        self._fill_blocks(theta, values, append)
 
-    def _fill_blocks(self, theta, values, copied_in_blocks, append):
-        """The exact operations, leaves and ``append``, a block of rows at a time."""
+    def _fill_blocks(self, theta, values, append):
+        """The exact operations, the leaves, the held terms and ``append``, a block of rows at a time.
+
+        A block's values live in a column-major scratch (row j: term j, rows after the terms:
+        operations that are no term), where each operation runs on contiguous rows; one
+        transposed copy per block moves the terms into Θ (measured faster than operating on
+        Θ's strided columns in place, benchmarks/library.py).
+        """
         n_samples, n_terms = theta.shape[0], len(self.roots)
-        rows = max(64, BLOCK_BYTES // (8 * (theta.shape[1] + len(self.scratch_row))))
-        scratch = np.empty((len(self.scratch_row), min(rows, n_samples)))
+        n_rows = n_terms + len(self.scratch_row)
+        rows = max(64, BLOCK_BYTES // (8 * (theta.shape[1] + n_rows)))
+        scratch = np.empty((n_rows, min(rows, n_samples)))
+        home = {i: js[0] for i, js in self.columns_of_node.items()}  # node -> its scratch row
+        home.update((i, n_terms + r) for i, r in self.scratch_row.items())
+        in_blocks = set(self.block_steps)
         scalars = {i: v for i, v in values.items() if np.ndim(v) == 0}
-        arrays = [(i, v) for i, v in values.items() if np.ndim(v)]  # columns of x and u, whole values
-        # Where each node lives in a block: its (first) column of Θ, or a scratch row.
-        in_theta = [(i, js[0]) for i, js in self.columns_of_node.items()
-                    if i not in values or i in copied_in_blocks]
-        copies = [(i, js) for i, js in self.columns_of_node.items() if i in values]  # leaves, whole terms
-        repeats = [(i, self.columns_of_node[i][1:]) for i in self.block_steps
-                   if len(self.columns_of_node.get(i, ())) > 1]
+        # Columns of x and u, and whole values kept, that no term is: read from where they are.
+        sliced = [(i, v) for i, v in values.items() if np.ndim(v) and i not in home]
+        loads = [(home[i], values[i]) for i in self.columns_of_node if i in values]  # leaves, held terms
+        # Whole-column terms that went into Θ column by column: read back (their rows are
+        # written again, unchanged, by the transposed copy).
+        read_back = [home[i] for i in self.columns_of_node if i not in values and i not in in_blocks]
+        repeats = [(js[0], js[1:]) for js in self.columns_of_node.values() if len(js) > 1]
         program = [(_EXACT[self.nodes[i].kind], self.nodes[i].operands, i) for i in self.block_steps]
         for start in range(0, n_samples, rows):
             stop = min(start + rows, n_samples)
-            block = theta[start:stop]
-            by_column = block.T  # by_column[j] is column j of the block (a view)
+            block, rows_here = theta[start:stop], scratch[:, : stop - start]
             here = dict(scalars)  # node -> its values on this block's rows
-            here.update((i, v[start:stop]) for i, v in arrays)
-            for i, j in in_theta:
-                here[i] = by_column[j]
-            for i, r in self.scratch_row.items():
-                here[i] = scratch[r, : stop - start]
-            for i, js in copies:
-                value = here[i] if i in scalars else values[i][start:stop]
-                for j in js:
-                    by_column[j] = value
+            here.update((i, v[start:stop]) for i, v in sliced)
+            here.update((i, rows_here[r]) for i, r in home.items())
+            for r, value in loads:
+                rows_here[r] = value[start:stop] if np.ndim(value) else value
+            for r in read_back:
+                rows_here[r] = block[:, r]
             for function, operands, i in program:
                 function(*[here[o] for o in operands], out=here[i])
-            for i, js in repeats:
-                for j in js:
-                    by_column[j] = here[i]
+            for r, others in repeats:
+                rows_here[others] = rows_here[r]
+            block[:, :n_terms] = rows_here[:n_terms].T
             if append is not None:
                 block[:, n_terms:] = append[start:stop]
 
