@@ -32,12 +32,16 @@ class Ranking:
     criterion : str
     scored_on : str
         "held-out runs" or "training runs".
+    first_run : dict of str -> ndarray of shape (n_samples, n_states)
+        Each candidate's simulated trajectory on the first scored run (by name), as
+        scored: the report draws these instead of simulating again.
     """
 
     table: pd.DataFrame
     candidates: tuple
     criterion: str
     scored_on: str
+    first_run: dict
 
 
 def hypothesis_candidate(settings, hypothesis, model, backend, plan):
@@ -94,4 +98,6 @@ def rank_candidates(candidates, model, dataset, smoothed, settings, *, criterion
         candidates, model.state_names, model.input_names, dataset.runs, smoothed.scoring_pairs(),
         settings=settings, inclusion=inclusion, library_terms=library_terms, horizon=horizon,
     )
-    return Ranking(ranking.score_table(candidates, scores, criterion), tuple(candidates), criterion, scored_on)
+    first_run = {c.name: score["first_run"] for c, score in zip(candidates, scores)}
+    return Ranking(ranking.score_table(candidates, scores, criterion), tuple(candidates), criterion, scored_on,
+                   first_run)

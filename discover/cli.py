@@ -6,6 +6,7 @@ import argparse
 import signal
 import sys
 import threading
+import time
 
 from . import __version__
 from .exceptions import DiscoverError
@@ -40,7 +41,9 @@ def build_parser():
                          description="Run the pipeline from a TOML config and write the output folder.")
     run.add_argument("config", help="path to the TOML config")
     run.add_argument("--out", help="output folder (default: [output].dir, else out/<config name>)")
-    run.add_argument("--force", action="store_true", help="replace an existing output folder")
+    run.add_argument("--force", action="store_true",
+                     help="replace an existing output folder that discover wrote (never anything else)")
+    run.add_argument("--verbose", action="store_true", help="print the seconds each stage took")
     rank = sub.add_parser("rank", help="score extra hypotheses against an earlier run's ranking",
                           description="Fit and score the [[ranking.hypotheses]] of a TOML file on the "
                                       "training and held-out runs of an earlier output folder, without "
@@ -91,8 +94,13 @@ def _run(args, session):
     with OutputClaim(target, force=args.force, inputs=inputs) as claim:
         session["claim"] = claim
         result = run(settings, progress=True)
+        started = time.perf_counter()
         written = claim.publish(lambda folder: write_files(result, folder))
+        outputs_seconds = time.perf_counter() - started
     print(summary(result))
+    if args.verbose:
+        stages = {**result.timings, "outputs": outputs_seconds}
+        print("Stage times: " + ", ".join(f"{name} {seconds:.2f} s" for name, seconds in stages.items()))
     print(f"Output written to {written}")
 
 

@@ -27,6 +27,7 @@ from .config import to_toml
 from .report import (
     CAUTION,
     _pyplot,
+    file_stems,
     format_equation,
     plot_coefficient_distributions,
     plot_cv_curve,
@@ -137,16 +138,19 @@ def figure_uri(fig, *, dpi=FIGURE_DPI):
     return "data:image/png;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
 
 
-def _figure(make, caption):
-    """``<figure>`` with the embedded PNG of ``make()``.
+def _figure(make, caption, png=None):
+    """``<figure>`` with the embedded PNG ``png`` (bytes of a figure already written), else of ``make()``.
 
     Math text is off while the figure is built and drawn: names from the data may
     hold ``$``, which matplotlib would otherwise read as TeX.
     """
     import matplotlib
 
-    with matplotlib.rc_context({"text.parse_math": False}):
-        uri = figure_uri(make())
+    if png is not None:
+        uri = "data:image/png;base64," + base64.b64encode(png).decode("ascii")
+    else:
+        with matplotlib.rc_context({"text.parse_math": False}):
+            uri = figure_uri(make())
     return (f'<figure><img src="{uri}" alt="{esc(caption)}">'
             f"<figcaption>{esc(caption)}</figcaption></figure>")
 
@@ -172,7 +176,7 @@ def _interval_level(result):
     return _ensemble_info(result).get("interval_level", result.settings.bootstrap.level)
 
 
-def _equations(result):
+def _equations(result, figures):
     model = result.model
     stats = model.term_stats
     has_p = "inclusion_probability" in stats
@@ -215,11 +219,12 @@ def _equations(result):
         parts.append(_table(header, rows, caption=caption, numeric=range(1, len(header))))
     if result.ensemble is not None and np.any(model.coef):
         parts.append(_figure(lambda: plot_coefficient_distributions(model, result.ensemble.coef),
+                             png=figures.get("coefficient_distributions.png"), caption=
                              "Coefficients of the bootstrap members that keep each term; dashed: the model's."))
     return _section("equations", "\n".join(parts))
 
 
-def _held_out(result):
+def _held_out(result, figures):
     if not result.validation:
         body = _paragraph("No run was held out: the model is not validated on unseen data. Hold out at least "
                           "one run ([data].held_out) before trusting its predictions.", "absent")
@@ -235,10 +240,11 @@ def _held_out(result):
                         "recorded input. Fit = 100·(1 − NRMSE), NRMSE = RMSE / std of the measured state."),
              _table(header, rows, caption="held-out fit", numeric=(2, 3, 4, 6, 7))]
     names = result.model.state_names
-    for item in result.validation:
+    for item, stem in zip(result.validation, file_stems([item.run for item in result.validation])):
         band = (item.band.low, item.band.high) if item.band is not None else None
         what = "measured (grey), simulated (dashed)" + (", ensemble band (shaded)" if band is not None else "")
         parts.append(_figure(lambda item=item, band=band: plot_held_out(item, names, band=band),
+                             png=figures.get(f"heldout_{stem}.png"), caption=
                              f"Held-out run {item.run}: {what}."))
     return _section("held-out", "\n".join(parts))
 
@@ -250,7 +256,7 @@ def _warnings(result):
     return _section("warnings", f'<ul class="warnings">{items}</ul>')
 
 
-def _inclusion(result):
+def _inclusion(result, figures):
     if result.ensemble is None:
         return _section("inclusion-map", _paragraph(
             "The bootstrap ensemble was off ([bootstrap].members = 0): no inclusion map.", "absent"))
@@ -260,6 +266,7 @@ def _inclusion(result):
     rows = [[pretty_term(result.library_terms[j])] + [_number(p, 3) for p in probability[j]] for j in shown]
     parts = [
         _figure(lambda: plot_inclusion_map(result.library_terms, names, probability),
+                png=figures.get("inclusion_map.png"), caption=
                 "Inclusion probability of every candidate term that some member kept, per equation."),
         _table(["term"] + [f"d({s})/dt" for s in names], rows,
                caption=f"inclusion probabilities ({len(shown)} of {len(result.library_terms)} candidate terms "
@@ -268,7 +275,7 @@ def _inclusion(result):
     return _section("inclusion-map", "\n".join(parts))
 
 
-def _cv(result):
+def _cv(result, figures):
     names = result.model.state_names
     thresholds = result.model.info.get("threshold", {})
     if result.cv is None:
@@ -289,14 +296,14 @@ def _cv(result):
                      "minimum; 'min' the minimum."),
         _table(["equation", "selected threshold", "CV error", "± 1 SE", "terms kept"],
                [[f"d({r[0]})/dt"] + r[1:] for r in rows], caption="selected thresholds", numeric=(1, 2, 3, 4)),
-        _figure(lambda: plot_cv_curve(cv, names),
+        _figure(lambda: plot_cv_curve(cv, names), png=figures.get("cv_curve.png"), caption=
                 "Cross-validation error (± 1 SE) and terms kept (dotted, right axis) against the threshold; "
                 "dashed: the selected threshold."),
     ]
     return _section("cv-curve", "\n".join(parts))
 
 
-def _ranking(result):
+def _ranking(result, figures):
     if result.ranking is None:
         return _section("ranking", _paragraph("The ranking was off ([ranking].enabled = false).", "absent"))
     table = result.ranking.table
@@ -322,12 +329,13 @@ def _ranking(result):
         _paragraph(f"Ordered by {criterion}. ΔAICc ≤ 2: substantial support; > 10: essentially none. "
                    f"The simulation error is the mean NRMSE of the free-run simulation on {scored_on}."),
         _table([label for _, label, _ in columns], rows, numeric=numeric, caption=caption),
-        _figure(lambda: plot_pareto(table), "Number of terms against held-out simulation error; the Pareto "
+        _figure(lambda: plot_pareto(table), png=figures.get("ranking_pareto.png"), caption="Number of terms against held-out simulation error; the Pareto "
                                             "front joined, the best-ranked labelled #rank Δ=ΔAICc."),
     ]
     if result.validation and result.candidates:
         top = result.settings.ranking.top
-        parts.append(_figure(lambda: plot_top_candidates(result, top),
+        parts.append(_figure(lambda: plot_top_candidates(result, top), png=figures.get("ranking_top.png"),
+                             caption=
                              f"The {top} best-ranked candidates on held-out run {result.validation[0].run}."))
     return _section("ranking", "\n".join(parts))
 
@@ -413,8 +421,13 @@ def _inputs(result):
 # --------------------------------------------------------------------------- the page
 
 
-def render_report(result):
-    """The HTML text of the report of a :class:`discover.pipeline.Result`."""
+def render_report(result, figures=None):
+    """The HTML text of the report of a :class:`discover.pipeline.Result`.
+
+    ``figures`` maps file names (``cv_curve.png``...) to PNG bytes already drawn for the
+    output folder; those figures are embedded as they are instead of being drawn again.
+    """
+    figures = figures or {}
     model = result.model
     n_runs = len(result.training.runs) + len(result.held_out.runs)
     title = f"discover report: {', '.join(model.state_names)}"
@@ -423,8 +436,9 @@ def render_report(result):
             f"{', '.join(model.input_names) or '(none)'}, identified from {len(result.training.runs)} training "
             f"run(s) of {n_runs}; {kept} terms kept. Config: {result.settings.source}.")
     nav = "".join(f'<li><a href="#{key}">{esc(heading)}</a></li>' for key, heading in SECTIONS.items())
-    sections = [_caution(), _equations(result), _held_out(result), _warnings(result), _inclusion(result),
-                _cv(result), _ranking(result), _data_overview(result), _derivative_check(result), _inputs(result)]
+    sections = [_caution(), _equations(result, figures), _held_out(result, figures), _warnings(result),
+                _inclusion(result, figures), _cv(result, figures), _ranking(result, figures), _data_overview(result),
+                _derivative_check(result), _inputs(result)]
     return "\n".join([
         "<!DOCTYPE html>",
         '<html lang="en">',
@@ -451,5 +465,6 @@ def render_report(result):
 def write_report(result, folder):
     """Write ``folder/report.html`` for a :class:`discover.pipeline.Result`; return its path."""
     path = Path(folder) / "report.html"
-    path.write_text(render_report(result), encoding="utf-8")
+    figures = {p.name: p.read_bytes() for p in Path(folder).glob("*.png")}  # drawn once, for the folder
+    path.write_text(render_report(result, figures), encoding="utf-8")
     return path

@@ -6,6 +6,7 @@ this module only chains them. :func:`run` is the Python entry point (``discover.
 
 from __future__ import annotations
 
+import time
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -41,7 +42,7 @@ class Result:
     simulation: SimulationSettings
     ensemble: bootstrap.Ensemble | None = None
     ranking: Ranking | None = None
-    timings: dict = field(default_factory=dict)
+    timings: dict = field(default_factory=dict)  # wall-clock seconds per stage
 
     @property
     def cv(self):
@@ -115,9 +116,23 @@ def run(source, *, progress=False):
         return _run(settings, compute.Executor(client, settings.bootstrap.n_jobs), progress)
 
 
+class _StageClock:
+    """Wall-clock seconds per stage, in the order the stages ran."""
+
+    def __init__(self):
+        self.seconds, self._last = {}, time.perf_counter()
+
+    def done(self, stage):
+        now = time.perf_counter()
+        self.seconds[stage] = self.seconds.get(stage, 0.0) + now - self._last
+        self._last = now
+
+
 def _run(settings, executor, progress):
     data, where = settings.data, settings.source
+    clock = _StageClock()
     training, held_out = load_dataset(settings, lazy_training=bool(data.chunk_rows))
+    clock.done("data")
     library = library_for(settings)
     smoothed = None
     if data.chunk_rows:
@@ -126,6 +141,7 @@ def _run(settings, executor, progress):
         check_excitation(training, where)
         smoothed = smooth_runs(training, settings.derivatives, progress=progress)
         backend = MemoryBackend(smoothed, executor)
+    clock.done("derivatives")
     plan = make_plan(backend, settings.selection.cv_folds, settings.bootstrap.block_length)
     check_library_size(library, sum(backend.lengths), where)
     rows = settings.bootstrap.resample == "rows"
@@ -138,6 +154,7 @@ def _run(settings, executor, progress):
     if data.chunk_rows:
         check_excitation(training, where)
     check_collinear_terms(gram_blocks.blocks, library, where)
+    clock.done("grams")
     folds, split = fold_labels(gram_blocks.blocks, settings.selection.cv_folds, settings.selection.cv_split)
     selection = select_terms(settings.selection, gram_blocks.blocks, folds, training.state_names, split=split)
     simulation = resolve_simulation(settings, training)
@@ -146,16 +163,19 @@ def _run(settings, executor, progress):
             "derivative_method": settings.derivatives.method, "cv_split": selection.split,
             **replay_info(settings, simulation)}
     single = Model(training.state_names, training.input_names, tuple(library.names), selection.coef, info=info)
+    clock.done("selection")
     ensemble, model = None, single
     if settings.bootstrap.members > 0:
         ensemble = bootstrap.run_ensemble(settings.bootstrap, settings.selection, settings.seed, gram_blocks,
                                           selection.thresholds, executor, progress=progress)
         model = bootstrap.ensemble_model(settings.bootstrap, single, ensemble, gram_blocks.blocks)
+    clock.done("ensemble")
     held_smoothed = smooth_runs(held_out, settings.derivatives)
     validation = validate_runs(model, held_smoothed, held_out, simulation)
     if ensemble is not None and settings.bootstrap.bands:
         validation = with_bands(validation, model, ensemble, simulation, backend.noise(),
                                 level=settings.bootstrap.level, seed=settings.seed)
+    clock.done("validation")
     ranking, ranking_notes = None, []
     if settings.ranking.enabled:
         candidates = collect_candidates(settings, model, gram_blocks, library, backend)
@@ -166,9 +186,10 @@ def _run(settings, executor, progress):
                                   inclusion=ensemble.summary.inclusion_probability if ensemble else None)
         if not held_out.runs:
             ranking_notes.append("The ranking scored candidates on the training runs (no run is held out).")
+        clock.done("ranking")
     warnings = (list(settings.notes) + data_warnings(training, held_out) + list(selection.warnings) + ranking_notes
                 + validation_warnings(validation, settings.bootstrap.members))
     if not held_out.runs:
         warnings.append("No run is held out: the model is not validated on unseen data.")
     return Result(settings, model, tuple(library.names), selection, training, held_out, smoothed, validation,
-                  tuple(warnings), single, simulation, ensemble, ranking)
+                  tuple(warnings), single, simulation, ensemble, ranking, clock.seconds)

@@ -307,8 +307,11 @@ def score_candidates(candidates, state_names, input_names, runs, smoothed, *, se
     sigma = np.where(measured.std(axis=0) > 0, measured.std(axis=0), 1.0)
     squared = np.zeros((len(candidates), len(state_names)))
     diverged = np.zeros(len(candidates), dtype=bool)
-    for run, (_, x_start) in zip(runs, smoothed):
+    first_run = None  # every candidate's trajectory on the first run, for the report's figure
+    for r, (run, (_, x_start)) in enumerate(zip(runs, smoothed)):
         interpolation = settings.interpolation_for(run.u)
+        if r == 0:
+            first_run = np.full((len(candidates), len(run.t), len(state_names)), np.nan)
         for rows in simulation_segments(run.t, horizon):
             x, div = simulate_ensemble(expressions, state_names, input_names, coef, run.t[rows],
                                        x_start[rows[0]], run.u[rows], interpolation=interpolation,
@@ -316,6 +319,8 @@ def score_candidates(candidates, state_names, input_names, runs, smoothed, *, se
                                        limits=settings.limits, time_limit=settings.time_limit)
             diverged |= div
             squared += np.nansum(((x - run.x[rows][None]) / sigma) ** 2, axis=1)
+            if r == 0:
+                first_run[:, rows] = x
     n_sim = sum(len(rows) for run in runs for rows in simulation_segments(run.t, horizon))
     x_dot = np.vstack([s.x_dot for s, _ in smoothed])
     d_sigma = np.where(x_dot.std(axis=0) > 0, x_dot.std(axis=0), 1.0)
@@ -334,6 +339,7 @@ def score_candidates(candidates, state_names, input_names, runs, smoothed, *, se
             "derivative_n": d_res.size,
             "derivative_error": float(np.mean(d_res**2)),
             "diverged": bool(diverged[m]),
+            "first_run": first_run[m] if first_run is not None else None,
         }
         if inclusion is not None:
             keys = [term_key(t) for t in library_terms]

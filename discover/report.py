@@ -282,25 +282,20 @@ def plot_pareto(table):
 
 
 def plot_top_candidates(result, top):
-    """Held-out trajectories of the best-ranked candidates (first held-out run)."""
-    from .model import Model
-    from .simulate import run_model
-
+    """Held-out trajectories of the best-ranked candidates (first held-out run), as the
+    ranking simulated them (nothing is simulated here)."""
     plt = _pyplot()
     item = result.validation[0]
     names = result.model.state_names
-    by_name = {c.name: c for c in result.candidates}
     fig, axes = plt.subplots(len(names), 1, figsize=(7, 2.2 * len(names) + 0.6), sharex=True, squeeze=False)
     styles = ["-", "--", ":", "-.", (0, (5, 1)), (0, (1, 1))]
     for i, ax in enumerate(axes[:, 0]):
         ax.plot(item.t, item.x[:, i], color="0.7", linewidth=2.0, label="measured")
         ax.set_ylabel(names[i])
     for n, (_, row) in enumerate(result.ranking.table.head(top).iterrows()):
-        c = by_name[row["candidate"]]
-        model = Model(names, result.model.input_names, c.terms, c.coef)
-        traj = run_model(model, item.t, item.x0, item.u, result.simulation)
+        trajectory = result.ranking.first_run[row["candidate"]]
         for i, ax in enumerate(axes[:, 0]):
-            ax.plot(item.t, traj.x[:, i], color="black", linestyle=styles[n % len(styles)], linewidth=1.0,
+            ax.plot(item.t, trajectory[:, i], color="black", linestyle=styles[n % len(styles)], linewidth=1.0,
                     label=f"#{row['rank']} {row['candidate']}")
     axes[0, 0].legend(fontsize=7, loc="best")
     axes[-1, 0].set_xlabel("time")
