@@ -15,7 +15,7 @@ times:
   ``f`` with the recorded input interpolated by the simulation rule
   (:func:`discover.simulate.input_function`: ``"linear"`` or ``"zoh"``);
 - the process noise of each interval, the discretisation of continuous white
-  noise (Van Loan 1978) through the model's Jacobian;
+  noise (Van Loan 1978) through the model's Jacobian (:mod:`discover.linear_systems`);
 - one transition and one process-noise matrix per interval, also in the
   smoother (filterpy's ``rts_smoother`` uses one ``fx`` and one ``Q`` for all
   steps, so it is called on one interval at a time).
@@ -49,9 +49,7 @@ Control 53(3), 845–849.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Callable, Sequence
-from numbers import Real
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -59,11 +57,15 @@ import numpy as np
 import pandas as pd
 from numpy.typing import ArrayLike
 from filterpy.kalman import MerweScaledSigmaPoints, UnscentedKalmanFilter
-from scipy.linalg import LinAlgError, expm, solve_discrete_are
+from scipy.linalg import LinAlgError
 from threadpoolctl import threadpool_limits
 
+from .estimation_checks import _check_times, _evaluate, _is_real, _samples, _square, _vector
 from .exceptions import ConfigError, DataError, OutputError
+from .linear_systems import _jacobian, _van_loan_noise, discretize_linear, steady_state_gain
 from .simulate import input_function
+# A constant that moved with its code, still reachable as discover.estimation.JACOBIAN_STEP:
+from .linear_systems import JACOBIAN_STEP  # noqa: F401
 
 __all__ = [
     "StateEstimate",
@@ -80,11 +82,6 @@ BAND_SIGMAS = 2.0
 # local error is O(h^5): a quarter interval keeps the integration error far
 # below any process noise worth modelling (common practice).
 DEFAULT_SUBSTEPS = 4
-
-# Central-difference step for the Jacobian, relative to the state's scale:
-# eps^(1/3) balances truncation against rounding (Press et al., Numerical
-# Recipes, 3rd ed., §5.7).
-JACOBIAN_STEP = np.finfo(float).eps ** (1.0 / 3.0)
 
 NOT_POSITIVE_DEFINITE = (
     "the state covariance stopped being positive definite at t={t:.6g} (sample {k}). "
@@ -146,200 +143,8 @@ class StateEstimate:
         return self.smoothed + BAND_SIGMAS * self.smoothed_std
 
 
-# --- checks ------------------------------------------------------------------
-
-
-def _as_float(name, value):
-    try:
-        return np.asarray(value, dtype=float)
-    except (TypeError, ValueError):
-        kind = type(value).__name__
-        raise DataError(f"`{name}` must be numbers (an array of floats). Got {kind}.") from None
-
-
-def _is_real(value):
-    return isinstance(value, Real) and not isinstance(value, bool) and math.isfinite(value)
-
-
-def _square(name, value, n=None):
-    value = _as_float(name, value)
-    if value.ndim != 2 or value.shape[0] != value.shape[1] or (n is not None and value.shape[0] != n):
-        size = "square" if n is None else f"of shape ({n}, {n})"
-        raise DataError(f"`{name}` must be a {size} matrix. Got shape {value.shape}.")
-    if not np.all(np.isfinite(value)):
-        raise DataError(f"`{name}` has non-finite entries.")
-    return value
-
-
-# --- linear systems ----------------------------------------------------------
-
-
-def _van_loan_noise(a, q, dt):
-    """``∫_0^dt expm(a s) q expm(a s)ᵀ ds``, the noise of one step (Van Loan 1978).
-
-    ``expm([[-a, q], [0, aᵀ]] dt) = [[·, G12], [0, G22]]`` with ``G22 = Φᵀ``,
-    ``Φ = expm(a dt)``, and the integral is ``Φ G12``.
-    """
-    n = len(a)
-    block = np.zeros((2 * n, 2 * n))
-    block[:n, :n] = -a
-    block[:n, n:] = q
-    block[n:, n:] = a.T
-    exponential = expm(block * dt)
-    phi = exponential[n:, n:].T
-    qd = phi @ exponential[:n, n:]
-    return 0.5 * (qd + qd.T)  # symmetric up to rounding; make it exactly so
-
-
-def discretize_linear(a: ArrayLike, b: ArrayLike, q: ArrayLike,
-                      dt: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Exact discretisation of ``dx = (a x + b u) dt + dβ`` over one step with u held.
-
-    Parameters
-    ----------
-    a : ndarray of shape (n_states, n_states)
-    b : ndarray of shape (n_states, n_inputs)
-    q : ndarray of shape (n_states, n_states)
-        Diffusion of the continuous white process noise (covariance added per unit time).
-    dt : float > 0
-
-    Returns
-    -------
-    ad : ndarray of shape (n_states, n_states)
-        ``expm(a dt)``.
-    bd : ndarray of shape (n_states, n_inputs)
-        ``∫_0^dt expm(a s) ds · b``, the input matrix for a zero-order-held input,
-        from ``expm([[a, b], [0, 0]] dt)`` (common practice).
-    qd : ndarray of shape (n_states, n_states)
-        Process noise covariance of one step (Van Loan 1978).
-    """
-    a = _square("a", a)
-    n = len(a)
-    b = _as_float("b", b)
-    if b.size == 0:
-        b = np.zeros((n, 0))
-    if b.ndim != 2 or b.shape[0] != n:
-        raise DataError(f"`b` must have shape ({n}, n_inputs). Got shape {b.shape}.")
-    q = _square("q", q, n)
-    if not (_is_real(dt) and dt > 0):
-        raise DataError(f"`dt` must be a positive number. Got {dt!r}.")
-    m = b.shape[1]
-    block = np.zeros((n + m, n + m))
-    block[:n, :n] = a
-    block[:n, n:] = b
-    exponential = expm(block * dt)
-    return exponential[:n, :n], exponential[:n, n:], _van_loan_noise(a, q, dt)
-
-
-def steady_state_gain(a: ArrayLike, c: ArrayLike, q: ArrayLike, r: ArrayLike, dt: float) -> np.ndarray:
-    """Steady-state Kalman gain of the sampled linear system ``dx = a x dt + dβ``, ``y = c x + v``.
-
-    The input matrix does not enter the gain, so it is not asked for. The system is
-    discretised exactly (:func:`discretize_linear`) and the prior covariance solves
-    the discrete algebraic Riccati equation (``scipy.linalg.solve_discrete_are``
-    with the dual pair ``(adᵀ, cᵀ)``).
-
-    Parameters
-    ----------
-    a : ndarray of shape (n_states, n_states)
-    c : ndarray of shape (n_outputs, n_states)
-    q : ndarray of shape (n_states, n_states)
-        Diffusion of the continuous process noise (per unit time).
-    r : ndarray of shape (n_outputs, n_outputs)
-        Covariance of one sample's measurement noise.
-    dt : float > 0
-        Sample interval.
-
-    Returns
-    -------
-    gain : ndarray of shape (n_states, n_outputs)
-        ``P cᵀ (c P cᵀ + r)⁻¹`` with P the steady prior covariance, in the form
-        ``x_post = x_prior + gain (y - c x_prior)``.
-    """
-    a = _square("a", a)
-    c = np.atleast_2d(_as_float("c", c))
-    if c.shape[1] != len(a):
-        raise DataError(f"`c` must have {len(a)} columns (one per state). Got shape {c.shape}.")
-    r = _square("r", r, c.shape[0])
-    ad, _, qd = discretize_linear(a, np.zeros((len(a), 0)), q, dt)
-    try:
-        prior = solve_discrete_are(ad.T, c.T, qd, r)
-    except (LinAlgError, ValueError) as err:
-        raise DataError(
-            f"the Riccati equation has no stabilising solution ({err}); the states must be "
-            "detectable from `c` and `r` positive definite."
-        ) from None
-    return np.linalg.solve(c @ prior @ c.T + r, c @ prior).T
-
 
 # --- one run -----------------------------------------------------------------
-
-
-def _vector(name, value, n, *, what="state", positive=False, nonnegative=False):
-    value = _as_float(name, value)
-    if value.ndim == 0 and name != "x0":
-        value = np.full(n, float(value))
-    if value.shape != (n,):
-        raise DataError(f"`{name}` must have shape ({n},), one value per {what}. Got shape {value.shape}.")
-    if not np.all(np.isfinite(value)):
-        raise DataError(f"`{name}` must be finite. Got {value.tolist()}.")
-    if positive and np.any(value <= 0):
-        raise DataError(
-            f"`{name}` must be > 0 for every entry (a zero std makes a sample exact, which the "
-            f"filter cannot represent; use a small positive value). Got {value.tolist()}."
-        )
-    if nonnegative and np.any(value < 0):
-        raise DataError(f"`{name}` must be >= 0 for every entry. Got {value.tolist()}.")
-    return value
-
-
-def _samples(name, value, n_samples, what):
-    value = _as_float(name, value)
-    if value.ndim != 2 or value.shape[0] != n_samples:
-        raise DataError(
-            f"`{name}` must have shape (n_samples, n_{what}) = ({n_samples}, ...), one row per time. "
-            f"Got shape {value.shape}."
-            + (" Use reshape(-1, 1) for a single column." if value.ndim == 1 else "")
-        )
-    bad = ~np.isfinite(value)
-    if bad.any():
-        row, column = np.argwhere(bad)[0]
-        raise DataError(
-            f"`{name}` has {int(bad.sum())} non-finite values (first at row {row}, column {column}). "
-            "Drop or interpolate them first."
-        )
-    return value
-
-
-def _check_times(t):
-    t = _as_float("t", t)
-    if t.ndim != 1 or len(t) == 0:
-        raise DataError(f"`t` must be a non-empty 1-D array of times. Got shape {t.shape}.")
-    if not np.all(np.isfinite(t)):
-        raise DataError(f"`t` has non-finite values (first at index {int(np.argmax(~np.isfinite(t)))}).")
-    steps = np.diff(t)
-    if np.any(steps <= 0):
-        k = int(np.argmax(steps <= 0))
-        raise DataError(
-            f"`t` must be strictly increasing; t[{k + 1}]={t[k + 1]:.6g} follows t[{k}]={t[k]:.6g}. "
-            "Sort the run and drop repeated times."
-        )
-    return t
-
-
-def _evaluate(name, fun, x, u, n_columns, what):
-    """``fun(x, u)`` checked to return shape (len(x), n_columns)."""
-    value = np.asarray(fun(x, u), dtype=float)
-    if value.shape != (len(x), n_columns):
-        raise DataError(
-            f"`{name}(x, u)` must return shape (n, {n_columns}) (one column per {what}) for x of shape "
-            f"{x.shape} and u of shape {u.shape}. Got shape {value.shape}."
-        )
-    if not np.all(np.isfinite(value)):
-        raise DataError(
-            f"`{name}(x, u)` is not finite at x0={x[0].tolist()} with the first input u={u[0].tolist()}."
-        )
-    return value
 
 
 def _stage_inputs(t, u_of, steps, n_inputs):
@@ -374,15 +179,6 @@ def _rk4(f, x, dt, stage_u):
         x = x + (h / 6.0) * (k1 + 2.0 * k2 + 2.0 * k3 + k4)
     return x
 
-
-def _jacobian(f, x, u, scale):
-    """∂f/∂x at x (shape (n_states,)) by central differences, one call of f on 2·n_states rows."""
-    n = len(x)
-    step = JACOBIAN_STEP * np.maximum(np.maximum(np.abs(x), scale), np.finfo(float).tiny)
-    shifted = np.vstack([x + np.diag(step), x - np.diag(step)])
-    values = np.asarray(f(shifted, np.broadcast_to(u, (2 * n, len(u)))), dtype=float)
-    # Row j of the difference is column j of the Jacobian.
-    return ((values[:n] - values[n:]) / (2.0 * step)[:, None]).T
 
 
 def estimate_states(

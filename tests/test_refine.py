@@ -15,13 +15,11 @@ from scipy.optimize import approx_fprime
 
 from discover.derivatives import savitzky_golay
 from discover.exceptions import ConfigError, DataError, DiscoverError, ExpressionError
+from discover.integrator import _Dynamics, _integrate, _layout
 from discover.model import Model
 from discover.refine import (
     MeasuredRun,
     Structure,
-    _Dynamics,
-    _integrate,
-    _layout,
     andrews_lags,
     covariance_from_jacobian,
     newey_west_covariance,
