@@ -45,13 +45,14 @@ SECTIONS = {
     "caution": "Before you use this model",
     "equations": "Identified equations",
     "held-out": "Held-out validation",
+    "residuals": "Residual and excitation checks",
     "warnings": "Warnings",
     "inclusion-map": "Inclusion map",
     "cv-curve": "Threshold cross-validation",
     "ranking": "Ranking of candidate structures",
     "data-overview": "Data overview",
     "derivative-check": "Derivative check",
-    "inputs": "Inputs of the job",
+    "inputs": "Data files, versions and config",
 }
 MAX_OVERVIEW_RUNS = 12  # runs drawn in the data overview; the table lists them all
 MAX_RANKING_ROWS = 30  # rows of the ranking table; ranking.csv has them all
@@ -249,6 +250,40 @@ def _held_out(result, figures):
     return _section("held-out", "\n".join(parts))
 
 
+def _residuals(result):
+    diagnostics = result.diagnostics
+    if diagnostics is None:
+        return _section("residuals", _paragraph("No checks were run.", "absent"))
+    parts = [_paragraph(
+        "A model that has captured the dynamics leaves equation residuals ẋ − f(x, u) that are white and "
+        "independent of the inputs' past (Ljung, System Identification, 1999, ch. 16). Residuals are taken "
+        f"every {diagnostics.stride} samples (the smoothing window); the bounds are ±z/√N at the test level. "
+        "A residual correlated with an input suggests a missing term in that input; one that is not white, a "
+        "missing dynamic term. Inputs faster than the smoothing window can leave a smoothing bias that "
+        "follows the input too.")]
+    for analysis, where in ((diagnostics.held_out, "held-out runs"), (diagnostics.training, "training runs")):
+        if analysis is None:
+            continue
+        rows = [[state, _number(q), _number(p, 3), verdict] for state, q, p, verdict in
+                zip(analysis.state_names, analysis.ljung_box, analysis.ljung_box_p, analysis.verdicts)]
+        parts.append(_table(["equation", f"Ljung–Box Q ({analysis.max_lag} lags)", "p", "verdict"], rows,
+                            caption=f"residuals on the {where} ({100 * analysis.level:.0f} % level, "
+                                    f"N = {analysis.n_samples})", numeric=(1, 2)))
+    excitation = diagnostics.excitation
+    if excitation is not None:
+        rows = [[name, f"{order}{'+' if order >= excitation.max_order else ''}", _number(low), _number(high)]
+                for name, order, low, high in zip(excitation.input_names, excitation.order, excitation.band_low,
+                                                 excitation.band_high)]
+        parts.append(_table(["input", "order of persistent excitation", "band low", "band high"], rows,
+                            caption=f"input excitation in the training runs (band: {100 * excitation.power:.0f} % "
+                                    "of the power; order on samples one correlation length apart)",
+                            numeric=(1, 2, 3)))
+    outside = [m for check in diagnostics.extrapolation for m in check.messages]
+    parts.append(_paragraph("; ".join(outside) + "." if outside else
+                            "Every held-out run stays inside the training range of every state and input."))
+    return _section("residuals", "\n".join(parts))
+
+
 def _warnings(result):
     if not result.warnings:
         return _section("warnings", _paragraph("No warnings."))
@@ -436,7 +471,8 @@ def render_report(result, figures=None):
             f"{', '.join(model.input_names) or '(none)'}, identified from {len(result.training.runs)} training "
             f"run(s) of {n_runs}; {kept} terms kept. Config: {result.settings.source}.")
     nav = "".join(f'<li><a href="#{key}">{esc(heading)}</a></li>' for key, heading in SECTIONS.items())
-    sections = [_caution(), _equations(result, figures), _held_out(result, figures), _warnings(result),
+    sections = [_caution(), _equations(result, figures), _held_out(result, figures), _residuals(result),
+                _warnings(result),
                 _inclusion(result, figures), _cv(result, figures), _ranking(result, figures), _data_overview(result),
                 _derivative_check(result), _inputs(result)]
     return "\n".join([

@@ -22,7 +22,7 @@ from .model import Model
 from .selection import Selection, select_terms
 from .simulate import SimulationSettings, simulation_settings
 from .smoothing import SmoothedRuns, resolve_trim, smooth_runs
-from .validation import validate_runs, validation_warnings, with_bands
+from .validation import Diagnostics, diagnose, validate_runs, validation_warnings, with_bands
 
 
 @dataclass(frozen=True)
@@ -42,6 +42,7 @@ class Result:
     simulation: SimulationSettings
     ensemble: bootstrap.Ensemble | None = None
     ranking: Ranking | None = None
+    diagnostics: Diagnostics | None = None
     timings: dict = field(default_factory=dict)  # wall-clock seconds per stage
 
     @property
@@ -175,6 +176,7 @@ def _run(settings, executor, progress):
     if ensemble is not None and settings.bootstrap.bands:
         validation = with_bands(validation, model, ensemble, simulation, backend.noise(),
                                 level=settings.bootstrap.level, seed=settings.seed)
+    diagnostics = diagnose(model, training, held_out, smoothed, held_smoothed, library.names)
     clock.done("validation")
     ranking, ranking_notes = None, []
     if settings.ranking.enabled:
@@ -188,8 +190,8 @@ def _run(settings, executor, progress):
             ranking_notes.append("The ranking scored candidates on the training runs (no run is held out).")
         clock.done("ranking")
     warnings = (list(settings.notes) + data_warnings(training, held_out) + list(selection.warnings) + ranking_notes
-                + validation_warnings(validation, settings.bootstrap.members))
+                + validation_warnings(validation, settings.bootstrap.members) + list(diagnostics.warnings))
     if not held_out.runs:
         warnings.append("No run is held out: the model is not validated on unseen data.")
     return Result(settings, model, tuple(library.names), selection, training, held_out, smoothed, validation,
-                  tuple(warnings), single, simulation, ensemble, ranking, clock.seconds)
+                  tuple(warnings), single, simulation, ensemble, ranking, diagnostics, clock.seconds)

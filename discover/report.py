@@ -61,6 +61,7 @@ def summary(result):
             if item.band is not None:
                 cover = ", ".join(f"{s} {100 * c:.0f} %" for s, c in zip(model.state_names, item.band.coverage))
                 lines.append(f"  {item.run}: samples inside the {100 * item.band.level:.0f} % ensemble band: {cover}")
+    lines += diagnostic_lines(result.diagnostics)
     if result.ranking is not None:
         lines += ranking_lines(result.ranking.table, result.ranking.criterion, scored_on=result.ranking.scored_on)
     for warning in result.warnings:
@@ -241,6 +242,27 @@ def plot_coefficient_distributions(model, ensemble_coef):
         ax.tick_params(labelsize=7)
     fig.tight_layout()
     return fig
+
+
+def diagnostic_lines(diagnostics):
+    """Residual verdicts per state (held-out runs, else training runs) and input excitation."""
+    if diagnostics is None:
+        return []
+    lines = []
+    analysis, where = ((diagnostics.held_out, "held-out") if diagnostics.held_out is not None
+                       else (diagnostics.training, "training"))
+    if analysis is not None:
+        lines.append(f"Residual checks (equation residuals on the {where} runs, every {diagnostics.stride} "
+                     f"samples, {100 * analysis.level:.0f} % bounds, {analysis.max_lag} lags):")
+        lines += [f"  {verdict}" for verdict in analysis.verdicts]
+    excitation = diagnostics.excitation
+    if excitation is not None:
+        lines.append("Input excitation (training runs): " + ", ".join(
+            f"{name} order {order}{'+' if order >= excitation.max_order else ''}, "
+            f"band {low:.3g}–{high:.3g} (frequency units of 1/time)"
+            for name, order, low, high in zip(excitation.input_names, excitation.order, excitation.band_low,
+                                             excitation.band_high)))
+    return lines
 
 
 def ranking_lines(table, criterion, top=8, *, scored_on="held-out runs"):

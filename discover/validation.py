@@ -112,3 +112,82 @@ def validation_warnings(validation, members):
             notes.append(f"Held-out run {item.run!r}: {item.band.members_diverged} of {members} ensemble "
                          "members diverged; the band uses the others.")
     return notes
+
+
+# --------------------------------------------------------------------------- diagnostics
+
+
+@dataclass(frozen=True)
+class Diagnostics:
+    """Residual, excitation and coverage checks of the model (Ljung 1999, ch. 13 and 16).
+
+    Attributes
+    ----------
+    held_out, training : discover.residuals.ResidualAnalysis or None
+        Correlation tests of the equation residuals ẋ − f(x, u) on the held-out and the
+        training runs, taken every ``stride`` samples.
+    stride : int
+        Samples between residuals used: the smoothing window, beyond which the smoother's
+        own colouring of the residuals has died out. Inputs faster than the smoothing
+        window leave a smoothing bias in these residuals that follows the input too, so a
+        cross-correlation finding on such data can be the smoother's, not the model's.
+    excitation : discover.excitation.InputExcitation or None
+        Band and order of persistent excitation of each input in the training runs,
+        sampled once per correlation length of the inputs.
+    extrapolation : tuple of discover.coverage.Extrapolation
+        One per held-out run.
+    warnings : tuple of str
+    """
+
+    held_out: object
+    training: object
+    stride: int
+    excitation: object
+    extrapolation: tuple
+    warnings: tuple
+
+
+def _equation_residuals(model, smoothed, stride):
+    runs = [run for run in smoothed.trimmed if len(run.t) >= 8 * stride]
+    residuals = [(run.x_dot - model.rhs(run.x, run.u))[::stride] for run in runs]
+    return residuals, [run.u[::stride] for run in runs], [run.name for run in runs]
+
+
+def diagnose(model, training, held_out, training_smoothed, held_smoothed, library_names):
+    """Residual tests on held-out and training runs, input excitation, extrapolation warnings."""
+    from . import diagnostics
+
+    stride = 2 * held_smoothed.trim + 1
+    analyses = []
+    for smoothed in (held_smoothed, training_smoothed):
+        if smoothed is None:
+            analyses.append(None)
+            continue
+        residuals, inputs, names = _equation_residuals(model, smoothed, stride)
+        labels = [f"d({state})/dt" for state in model.state_names]
+        analyses.append(diagnostics.residual_analysis(residuals, inputs, state_names=labels,
+                                                      input_names=model.input_names, run_names=names)
+                        if residuals else None)
+    excitation = None
+    if model.input_names:
+        # Sampled once per correlation length of the inputs: the model is instantaneous in u,
+        # so what counts is how many different values the input takes, not how smoothly it
+        # moves between neighbouring samples (which makes lagged copies nearly equal).
+        step = max(bootstrap.correlation_length(r.u) for r in training.runs)
+        excitation = diagnostics.input_excitation([r.t[::step] for r in training.runs],
+                                                  [r.u[::step] for r in training.runs],
+                                                  input_names=model.input_names,
+                                                  run_names=[r.name for r in training.runs])
+    # Extremes, so that runs read in chunks (thin samples) are covered exactly.
+    extremes = [run.ranges() for run in training.runs]
+    reach = diagnostics.training_range([np.vstack(e[:2]) for e in extremes], [np.vstack(e[2:]) for e in extremes],
+                                       state_names=model.state_names, input_names=model.input_names)
+    extrapolation = tuple(diagnostics.check_extrapolation(reach, run.x, run.u, run_name=run.name)
+                          for run in held_out.runs)
+    known = model.state_names + model.input_names
+    used = [parse_expression(t, known).names for t in library_names]
+    counts = {name: sum(name in names for names in used) for name in model.input_names}
+    notes = diagnostics.diagnostic_warnings(residuals=analyses[0] or analyses[1], excitation=excitation,
+                                            extrapolations=extrapolation, term_counts=counts)
+    return Diagnostics(analyses[0], analyses[1], stride, excitation, extrapolation, notes)
+
