@@ -1,8 +1,9 @@
 """Candidate term libraries Θ(x, u): polynomials, trigonometric terms, custom terms.
 
 Every term carries its expression string in Python syntax over the column names
-(the model-file contract of DESIGN.md), and is evaluated through the whitelist
-parser of :mod:`discover.expressions`.
+(the model-file contract of DESIGN.md), parsed by the whitelist parser of
+:mod:`discover.expressions`. ``Library.evaluate`` runs all terms as one shared plan
+(common subexpressions once), with the values of the per-term evaluation.
 """
 
 from __future__ import annotations
@@ -52,8 +53,9 @@ class Library:
 
         For float64 x and u the terms are evaluated together (:class:`_SharedPlan`): a
         subexpression common to several terms is computed once, and products and sums a
-        block of rows at a time straight into Θ. Every value has the bits the term's own
-        expression gives (the same operations on the same operands, in the same order).
+        block of rows at a time. Every value has the bits the term's own expression gives
+        (the same operations on the same operands, in the same order); only a NaN that two
+        NaNs make may come out with another sign or payload.
         """
         columns = columns_of(self.state_names, self.input_names, x, u)
         extra = 0 if append is None else append.shape[1]
