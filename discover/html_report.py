@@ -8,25 +8,22 @@ tables. Every string that comes from the data or the config (column names, file
 names, run names, candidate names, warnings, the config itself) goes through
 :func:`html.escape`.
 
-The figures are those of :mod:`discover.report`, plus two defined here,
-:func:`plot_run_overview` and :func:`plot_derivative_check`; each takes parts of
-a result and returns a matplotlib figure, so notebooks can call them one by one.
+The figures are those of :mod:`discover.report`; each takes parts of a result and
+returns a matplotlib figure, so notebooks can call them one by one. The building
+blocks (escaping, tables, embedded figures, style) are in :mod:`discover.html_parts`.
 """
 
 from __future__ import annotations
 
-import base64
-import html
-import io
 from pathlib import Path
 
 import numpy as np
 
-from .provenance import provenance
 from .config import to_toml
+from .html_parts import _STYLE, _figure, _number, _paragraph, _percent, _table, esc, figure_uri  # noqa: F401
+from .provenance import provenance
 from .report import (
     CAUTION,
-    _pyplot,
     file_stems,
     format_equation,
     plot_coefficient_distributions,
@@ -56,108 +53,6 @@ SECTIONS = {
 }
 MAX_OVERVIEW_RUNS = 12  # runs drawn in the data overview; the table lists them all
 MAX_RANKING_ROWS = 30  # rows of the ranking table; ranking.csv has them all
-FIGURE_DPI = 100
-
-_STYLE = """
-body { font-family: system-ui, -apple-system, "Segoe UI", Helvetica, Arial, sans-serif;
-       color: #111; background: #fff; max-width: 72rem; margin: 0 auto; padding: 1rem 1.5rem 3rem;
-       line-height: 1.45; }
-h1 { font-size: 1.6rem; margin-bottom: 0.2rem; }
-h2 { font-size: 1.25rem; border-bottom: 1px solid #444; padding-bottom: 0.2rem; margin-top: 2.2rem; }
-h3 { font-size: 1.05rem; margin-bottom: 0.3rem; }
-nav ol { columns: 2; font-size: 0.95rem; }
-.caution { border: 3px double #000; padding: 0.6rem 1rem; background: #f2f2f2; }
-.equation { font-family: ui-monospace, "DejaVu Sans Mono", Menlo, Consolas, monospace; font-size: 1.02rem;
-            background: #f6f6f6; padding: 0.35rem 0.6rem; border-left: 4px solid #000; overflow-x: auto; }
-table { border-collapse: collapse; margin: 0.5rem 0 1rem; font-size: 0.92rem; }
-caption { text-align: left; font-weight: 600; padding-bottom: 0.25rem; }
-th, td { border: 1px solid #999; padding: 0.2rem 0.55rem; vertical-align: top; }
-th { background: #e6e6e6; text-align: left; }
-td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
-td.hash, td.path { font-family: ui-monospace, Menlo, Consolas, monospace; font-size: 0.82rem;
-                   word-break: break-all; }
-pre { background: #f6f6f6; border: 1px solid #ccc; padding: 0.6rem; overflow-x: auto; font-size: 0.85rem; }
-figure { margin: 0.8rem 0 1.4rem; }
-figure img { max-width: 100%; height: auto; border: 1px solid #ddd; }
-figcaption { font-size: 0.9rem; color: #333; }
-.absent { font-style: italic; color: #333; }
-ul.warnings li { margin-bottom: 0.3rem; }
-@media print { nav { display: none; } h2 { break-after: avoid; } figure { break-inside: avoid; } }
-"""
-
-
-def esc(value):
-    """Escape any value for HTML text or a quoted attribute."""
-    return html.escape(str(value), quote=True)
-
-
-def _number(value, digits=4):
-    """A number for a table cell: ``—`` for None/NaN."""
-    if value is None:
-        return "—"
-    value = float(value)
-    return "—" if not np.isfinite(value) else f"{value:.{digits}g}"
-
-
-def _percent(value, digits=1):
-    return "—" if value is None or not np.isfinite(value) else f"{value:.{digits}f} %"
-
-
-# --------------------------------------------------------------------------- HTML building blocks
-
-
-def _table(header, rows, *, caption=None, numeric=(), classes=None):
-    """An HTML table; every cell is escaped. ``numeric``: column indices right-aligned."""
-    classes = classes or {}
-    parts = ["<table>"]
-    if caption:
-        parts.append(f"<caption>{esc(caption)}</caption>")
-    parts.append("<thead><tr>" + "".join(f'<th scope="col">{esc(h)}</th>' for h in header) + "</tr></thead>")
-    parts.append("<tbody>")
-    for row in rows:
-        cells = []
-        for k, cell in enumerate(row):
-            css = "num" if k in numeric else classes.get(k)
-            cells.append(f'<td class="{css}">{esc(cell)}</td>' if css else f"<td>{esc(cell)}</td>")
-        parts.append("<tr>" + "".join(cells) + "</tr>")
-    parts.append("</tbody></table>")
-    return "\n".join(parts)
-
-
-def _paragraph(text, css=None):
-    return f'<p class="{css}">{esc(text)}</p>' if css else f"<p>{esc(text)}</p>"
-
-
-def figure_uri(fig, *, dpi=FIGURE_DPI):
-    """A matplotlib figure as a ``data:image/png;base64,...`` URI; the figure is closed."""
-    plt = _pyplot()
-    buffer = io.BytesIO()
-    try:
-        fig.savefig(buffer, format="png", dpi=dpi, metadata={"Software": None})
-    finally:
-        plt.close(fig)
-    return "data:image/png;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
-
-
-def _figure(make, caption, png=None):
-    """``<figure>`` with the embedded PNG ``png`` (bytes of a figure already written), else of ``make()``.
-
-    Math text is off while the figure is built and drawn: names from the data may
-    hold ``$``, which matplotlib would otherwise read as TeX.
-    """
-    import matplotlib
-
-    if png is not None:
-        uri = "data:image/png;base64," + base64.b64encode(png).decode("ascii")
-    else:
-        with matplotlib.rc_context({"text.parse_math": False}):
-            uri = figure_uri(make())
-    return (f'<figure><img src="{uri}" alt="{esc(caption)}">'
-            f"<figcaption>{esc(caption)}</figcaption></figure>")
-
-
-# --------------------------------------------------------------------------- figures of this module
-
 
 def _section(key, body):
     return f'<section>\n<h2 id="{key}">{esc(SECTIONS[key])}</h2>\n{body}\n</section>'
@@ -191,8 +86,10 @@ def _equations(result, figures):
         members = _ensemble_info(result).get("members", result.settings.bootstrap.members)
         parts.append(_paragraph(
             f"Inclusion probability: the share of {members} bootstrap members that keep the term. "
-            f"Interval: the central {100 * level:.0f} % of the coefficients of the members that keep it. "
-            "Coefficients are in the data's own units."))
+            f"Member spread: the central {100 * level:.0f} % of the coefficients of the members that keep it. "
+            "It shows how much the estimate moves between resamples of the data, not a confidence "
+            "interval: it leaves out the bias of smoothing and differentiation, so the true value can lie "
+            "outside it. Coefficients are in the data's own units."))
     thresholds = model.info.get("threshold", {})
     for state, kept in model.equations():
         parts.append(f"<h3>d({esc(state)})/dt</h3>")
@@ -205,7 +102,7 @@ def _equations(result, figures):
         if has_p:
             header.append("inclusion probability")
         if has_interval:
-            header += [f"interval low ({100 * level:.0f} %)", f"interval high ({100 * level:.0f} %)"]
+            header += [f"member spread low ({100 * level:.0f} %)", f"member spread high ({100 * level:.0f} %)"]
         rows = []
         for expr, coefficient, values in kept:
             row = [pretty_term(expr), _number(coefficient, 6)]
@@ -231,7 +128,7 @@ def _held_out(result, figures):
                           "one run ([data].held_out) before trusting its predictions.", "absent")
         return _section("held-out", body)
     table = result.validation_table()
-    rows = [[r["run"], r["state"], _percent(r["fit_percent"]), _number(r["rmse"]), _number(r["nrmse"]),
+    rows = [[r["run"], r["state"], _percent(r["nrmse_fit_percent"]), _number(r["rmse"]), _number(r["nrmse"]),
              "yes" if r["diverged"] else "no",
              _percent(100 * r["band_coverage"], 0) if np.isfinite(r["band_coverage"]) else "—",
              "—" if not np.isfinite(r["members_diverged"]) else str(int(r["members_diverged"]))]

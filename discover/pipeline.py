@@ -59,12 +59,12 @@ class Result:
             for i, state in enumerate(self.model.state_names):
                 rows.append({
                     "run": item.run, "state": state, "rmse": item.metrics["rmse"][i],
-                    "nrmse": item.metrics["nrmse"][i], "fit_percent": item.metrics["fit_percent"][i],
+                    "nrmse": item.metrics["nrmse"][i], "nrmse_fit_percent": item.metrics["fit_percent"][i],
                     "diverged": item.simulation.diverged,
                     "band_coverage": item.band.coverage[i] if item.band is not None else np.nan,
                     "members_diverged": item.band.members_diverged if item.band is not None else np.nan,
                 })
-        return pd.DataFrame(rows, columns=["run", "state", "rmse", "nrmse", "fit_percent", "diverged",
+        return pd.DataFrame(rows, columns=["run", "state", "rmse", "nrmse", "nrmse_fit_percent", "diverged",
                                            "band_coverage", "members_diverged"])
 
     def inclusion_table(self):

@@ -21,6 +21,19 @@ def pretty_term(expr):
     return text.replace("*", "·")
 
 
+#: Significant digits of coefficients in the terminal, the summary and the LaTeX export.
+DIGITS = 4
+
+
+def coefficient_text(value, digits=DIGITS):
+    """``value`` to ``digits`` significant digits; a rounded value keeps its trailing zeros,
+    so that 1.0004 reads ``1.000`` and a bare ``1`` always means exactly one."""
+    short = f"{value:.{digits}g}"
+    if float(short) == value:
+        return short
+    return f"{value:#.{digits}g}".rstrip(".") if "e" not in short else short
+
+
 def format_equation(state, kept, *, show_probability=False):
     """``d(yaw_rate)/dt = -0.05·yaw_rate + 0.005·rudder`` from (expr, coefficient, stats) rows."""
     if not kept:
@@ -28,7 +41,7 @@ def format_equation(state, kept, *, show_probability=False):
     parts = []
     for n, (expr, coefficient, stats) in enumerate(kept):
         sign = "-" if coefficient < 0 else "+"
-        magnitude = f"{abs(coefficient):.4g}"
+        magnitude = coefficient_text(abs(coefficient))
         body = magnitude if expr == "1" else f"{magnitude}·{pretty_term(expr)}"
         p = stats.get("inclusion_probability")
         if show_probability and p is not None and np.isfinite(p):
@@ -240,6 +253,9 @@ def plot_coefficient_distributions(model, ensemble_coef):
         ax.set_title(f"d({model.state_names[i]})/dt: {pretty_term(model.terms[j])}", fontsize=8)
         ax.set_xlabel("coefficient", fontsize=8)
         ax.tick_params(labelsize=7)
+        # Few ticks, offset notation: small coefficients with many digits do not overlap.
+        ax.xaxis.set_major_locator(plt.MaxNLocator(4))
+        ax.ticklabel_format(axis="x", style="sci", scilimits=(-3, 4), useOffset=True)
     fig.tight_layout()
     return fig
 
@@ -292,9 +308,17 @@ def plot_pareto(table):
     front = table[table["pareto"] & ok].sort_values("n_terms")
     ax.plot(front["n_terms"], front["simulation_error"], color="black", marker="s", markersize=5,
             label="Pareto front", zorder=3)
+    # Labels of candidates at the same number of terms are stacked, so they never overlap.
+    stacked = {}
     for _, row in table[ok].head(6).iterrows():
+        level = stacked.get(row["n_terms"], 0)
+        stacked[row["n_terms"]] = level + 1
         ax.annotate(f"#{row['rank']} Δ={row['delta_aicc']:.0f}", (row["n_terms"], row["simulation_error"]),
-                    textcoords="offset points", xytext=(5, 4), fontsize=7)
+                    textcoords="offset points", xytext=(6, 4 + 9 * level), fontsize=7)
+    model = table[(table["candidate"] == "model") & ok]
+    if len(model):
+        ax.scatter(model["n_terms"], model["simulation_error"], marker="*", s=160, color="white",
+                   edgecolor="black", linewidth=1.0, label="identified model", zorder=4)
     ax.set_yscale("log")
     ax.set_xlabel("number of terms")
     ax.set_ylabel("held-out simulation error (mean NRMSE)")

@@ -141,7 +141,7 @@ def test_simulate_reproduces_the_held_out_metrics_of_the_run(tmp_path, capsys):
     assert main(["simulate", str(out / "model.json"), str(run_file)]) == 0
     printed = capsys.readouterr().out
     metrics = pd.read_csv(out / "heldout_metrics.csv")
-    fits = ", ".join(f"{r.state} {r.fit_percent:.1f} %" for r in metrics.itertuples())
+    fits = ", ".join(f"{r.state} {r.nrmse_fit_percent:.1f} %" for r in metrics.itertuples())
     assert f"heldout_sine: fit {fits}" in printed
     rmse = ", ".join(f"{r.state} {r.rmse:.4g}" for r in metrics.itertuples())
     assert f"heldout_sine: RMSE {rmse}" in printed and "Note:" not in printed
