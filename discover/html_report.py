@@ -33,6 +33,7 @@ from .report import (
     plot_inclusion_map,
     plot_pareto,
     plot_run_overview,
+    plot_state_coverage,
     plot_top_candidates,
     pretty_term,
 )
@@ -178,6 +179,10 @@ def _residuals(result):
     outside = [m for check in diagnostics.extrapolation for m in check.messages]
     parts.append(_paragraph("; ".join(outside) + "." if outside else
                             "Every held-out run stays inside the training range of every state and input."))
+    if result.held_out.runs:
+        parts.append(_figure(lambda: plot_state_coverage(result.training, result.held_out, result.model.state_names),
+                             "State-space coverage: each pair of states, training runs (grey) against held-out "
+                             "runs (black)."))
     return _section("residuals", "\n".join(parts))
 
 

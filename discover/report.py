@@ -221,7 +221,7 @@ def plot_inclusion_map(terms, state_names, probability):
     values = probability[shown]
     fig, ax = plt.subplots(figsize=(1.6 + 1.3 * len(state_names), 0.8 + 0.28 * len(shown)))
     image = ax.imshow(values, cmap="Greys", vmin=0.0, vmax=1.0, aspect="auto")
-    ax.set_xticks(range(len(state_names)), [f"d({s})/dt" for s in state_names])
+    ax.set_xticks(range(len(state_names)), [f"d({s})/dt" for s in state_names], rotation=30, ha="right")
     ax.set_yticks(range(len(shown)), [pretty_term(terms[j]) for j in shown])
     for (r, c), p in np.ndenumerate(values):
         ax.text(c, r, f"{p:.2f}", ha="center", va="center", fontsize=7,
@@ -449,3 +449,27 @@ def plot_derivative_check(smoothed_run, raw_t, raw_x, state_names):
 
 
 # --------------------------------------------------------------------------- sections
+
+
+def plot_state_coverage(training, held_out, state_names):
+    """Pairwise state-space coverage: every pair of states, training runs (grey) against held-out
+    runs (black), so a held-out run that leaves the trained region shows at a glance."""
+    plt = _pyplot()
+    n = len(state_names)
+    pairs = [(i, j) for i in range(n) for j in range(i + 1, n)] or [(0, 0)]
+    cols = min(3, len(pairs))
+    rows = -(-len(pairs) // cols)
+    fig, axes = plt.subplots(rows, cols, figsize=(3.2 * cols, 3.0 * rows), squeeze=False)
+    for ax in axes.ravel()[len(pairs):]:
+        ax.axis("off")
+    for ax, (i, j) in zip(axes.ravel(), pairs):
+        for dataset, color, label in ((training, "0.7", "training"), (held_out, "black", "held out")):
+            for k, run in enumerate(dataset.runs):
+                x_axis = run.t if i == j else run.x[:, i]
+                ax.plot(x_axis, run.x[:, j], color=color, linewidth=0.6, label=label if k == 0 else None)
+        ax.set_xlabel("time" if i == j else state_names[i], fontsize=8)
+        ax.set_ylabel(state_names[j], fontsize=8)
+        ax.tick_params(labelsize=7)
+    axes[0, 0].legend(fontsize=7, loc="best")
+    fig.tight_layout()
+    return fig
