@@ -129,9 +129,9 @@ def test_ship_report_has_every_section_and_embedded_pngs(ship_report):
     page = parse(text)
     assert SECTION_IDS <= set(page.h2_ids)
     images = check_self_contained(page, text)
-    # Figures: coefficients, held-out run, inclusion map, CV curve, Pareto, top candidates,
-    # one overview per run (5 runs), derivative check.
-    assert len(images) == 6 + 5 + 1
+    # Figures: coefficients, held-out run, state coverage, inclusion map, CV curve, Pareto,
+    # top candidates, one overview per run (5 runs), derivative check.
+    assert len(images) == 7 + 5 + 1
     # Internal links point at sections that exist.
     anchors = {value[1:] for tag, name, value in page.attributes if name == "href"}
     assert anchors <= set(page.h2_ids)
