@@ -12,12 +12,12 @@ from . import ranking
 from .candidates import hypothesis_candidate
 from .compute import Executor
 from .config import load_config, tomllib, with_hypotheses
-from .data import load_dataset
+from .data import file_hash, load_dataset
 from .exceptions import ConfigError, DataError, OutputError
-from .grams import MemoryBackend, make_plan
+from .grams import ChunkedBackend, MemoryBackend, make_plan
 from .model import load_model
 from .pipeline import resolve_simulation
-from .smoothing import smooth_runs
+from .smoothing import resolve_trim, smooth_runs
 
 
 def read_hypotheses(path):
@@ -45,7 +45,7 @@ def check_same_data(record, runs, out_dir):
         if path not in recorded:
             raise DataError(f"{run.source}: was not among the data files of {out_dir} (see its provenance.json); "
                             "the new scores would not be comparable. Pass --allow-changed-data to score anyway.")
-        if recorded[path] != run.sha256:
+        if recorded[path] != (run.sha256 or file_hash(run.source)):  # runs read in chunks: hashed here
             raise DataError(f"{run.source}: changed since {out_dir} was written (SHA-256 differs from its "
                             "provenance.json), so new scores would not be comparable with the table. Run "
                             "'discover run' again, or pass --allow-changed-data to score anyway.")
@@ -78,14 +78,19 @@ def rank_more(out_dir, hypotheses_path, *, criterion=None, allow_changed_data=Fa
     clash = sorted(names & set(old["candidate"]))
     if clash:
         raise ConfigError(f"{hypotheses_path}: {clash} are already in {out_dir / 'ranking.csv'}; rename them.")
-    training, held_out = load_dataset(settings)
+    chunked = bool(settings.data.chunk_rows)
+    training, held_out = load_dataset(settings, lazy_training=chunked)
     if not allow_changed_data:
         check_same_data(record, list(training.runs) + list(held_out.runs), out_dir)
     model = load_model(out_dir / "model.json")
-    smoothed = smooth_runs(training, settings.derivatives)
-    backend = MemoryBackend(smoothed, Executor())
+    if chunked:  # as the run read them: chunk by chunk, never whole
+        backend, smoothed = ChunkedBackend(settings, training, resolve_trim(settings.derivatives)), None
+    else:
+        smoothed = smooth_runs(training, settings.derivatives)
+        backend = MemoryBackend(smoothed, Executor())
     plan = make_plan(backend, settings.selection.cv_folds, settings.bootstrap.block_length)
     candidates = [hypothesis_candidate(settings, h, model, backend, plan) for h in settings.ranking.hypotheses]
+    training = backend.thin_training(training)
     scored = held_out if held_out.runs else training  # as the run did when nothing was held out
     scored_smooth = smooth_runs(scored, settings.derivatives) if held_out.runs else smoothed
     scores = ranking.score_candidates(candidates, model.state_names, model.input_names, scored.runs,

@@ -23,15 +23,9 @@ from discover.cli import main
 from discover.exceptions import ConfigError, ExpressionError, ModelFileError
 from discover.expressions import parse_expression
 from discover.model import from_dict, load_model
+from test_faults import small_config
 
 ROOT = Path(__file__).resolve().parents[1]
-
-
-def small_config(folder, **data):
-    section = {"files": [str(folder / "*.csv")], "states": ["x"], "inputs": ["u"], "held_out_count": 0}
-    section.update(data)
-    return {"data": section, "derivatives": {"method": "finite_difference"},
-            "bootstrap": {"members": 0}, "ranking": {"enabled": False}, "output": {"figures": False}}
 
 
 def decay_run(folder, name, *, x0=1.0, u=None, scale=1.0, n=201):

@@ -70,3 +70,26 @@ def test_two_chunk_sizes_give_identical_models_and_match_the_whole_run():
 def test_chunked_mode_refuses_what_needs_whole_runs():
     with pytest.raises(discover.ConfigError, match=r"with \[data\].chunk_rows set, \[derivatives].method must be one of"):
         discover.run(ship(1000, method="smoothing_spline"))
+
+
+def test_rank_on_a_chunked_run_reads_the_training_runs_in_chunks(tmp_path, monkeypatch, capsys):
+    # discover rank on an output of a chunked run: no training run is loaded whole.
+    from discover import data
+    from discover.cli import main
+
+    raw = ship(100)
+    config = tmp_path / "chunked.toml"
+    from discover.schema import to_toml
+    from discover.config import validate
+
+    config.write_text(to_toml(validate(raw, str(config), tmp_path)))
+    out = tmp_path / "out"
+    assert main(["run", str(config), "--out", str(out)]) == 0
+    extra = tmp_path / "more.toml"
+    extra.write_text('[[ranking.hypotheses]]\nname = "rudder only"\nyaw_rate = ["rudder"]\n')
+    loaded = []
+    real = data.load_run
+    monkeypatch.setattr(data, "load_run", lambda path, **kw: loaded.append(path.stem) or real(path, **kw))
+    capsys.readouterr()
+    assert main(["rank", str(out), str(extra)]) == 0
+    assert loaded == ["heldout_sine"]  # only the held-out run is loaded whole
