@@ -27,8 +27,6 @@ from dataclasses import dataclass
 from numbers import Integral, Real
 
 import numpy as np
-from scipy.interpolate import make_smoothing_spline
-from scipy.signal import savgol_filter
 
 from discover.exceptions import ConfigError, DataError
 
@@ -189,6 +187,8 @@ def finite_difference(t, x, *, order=2):
             "finite_difference with order = 4",
             "Use order = 2, or 'smoothing_spline', which accept non-uniform time.",
         )
+        from scipy.signal import savgol_filter  # here: scipy.signal costs a second at start-up
+
         x_dot = savgol_filter(x, 5, 4, deriv=1, delta=step, axis=0, mode="interp")
     return x, np.asarray(x_dot, dtype=np.float64)
 
@@ -237,6 +237,8 @@ def savitzky_golay(t, x, *, window=11, order=3):
         "Use 'smoothing_spline' or 'finite_difference', which accept "
         "non-uniform time, or resample the run first.",
     )
+    from scipy.signal import savgol_filter  # here: scipy.signal costs a second at start-up
+
     x_smooth = savgol_filter(x, window, order, deriv=0, axis=0, mode="interp")
     x_dot = savgol_filter(x, window, order, deriv=1, delta=step, axis=0, mode="interp")
     return np.asarray(x_smooth, dtype=np.float64), np.asarray(x_dot, dtype=np.float64)
@@ -286,6 +288,8 @@ def smoothing_spline(t, x, *, lam=None):
     _check_smoothing_spline_options(lam)
     x = np.asarray(x, dtype=np.float64)
     _require_samples(len(t), 5, "smoothing_spline")
+    from scipy.interpolate import make_smoothing_spline
+
     s, step = _time_in_samples(np.asarray(t, dtype=np.float64))
     x_smooth = np.empty_like(x)
     x_dot = np.empty_like(x)
