@@ -188,6 +188,11 @@ def _run(settings, executor, progress):
                                   inclusion=ensemble.summary.inclusion_probability if ensemble else None)
         if not held_out.runs:
             ranking_notes.append("The ranking scored candidates on the training runs (no run is held out).")
+        best = ranking.table.iloc[0] if len(ranking.table) else None
+        if best is not None and best["candidate"] != "model":
+            ranking_notes.append(
+                f"The ranking puts {best['candidate']!r} ({best['n_terms']} terms) first, not the identified model "
+                "written to model.json; compare them in ranking.csv and candidates.json before choosing.")
         clock.done("ranking")
     warnings = (list(settings.notes) + data_warnings(training, held_out) + list(selection.warnings) + ranking_notes
                 + validation_warnings(validation, settings.bootstrap.members) + list(diagnostics.warnings))

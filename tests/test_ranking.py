@@ -145,3 +145,17 @@ def test_simulate_reproduces_the_held_out_metrics_of_the_run(tmp_path, capsys):
     assert f"heldout_sine: fit {fits}" in printed
     rmse = ", ".join(f"{r.state} {r.rmse:.4g}" for r in metrics.itertuples())
     assert f"heldout_sine: RMSE {rmse}" in printed and "Note:" not in printed
+
+
+def test_a_ranking_that_prefers_another_candidate_says_so(tmp_path):
+    # The model written to model.json is the cross-validated fit; when the ranking puts another
+    # candidate first the run must say so (never two silent answers).
+    raw = {"data": {"files": [str(ROOT / "data_demo" / "ship" / "*.csv")], "states": ["heading", "yaw_rate"],
+                    "inputs": ["rudder"], "held_out": ["heldout_sine"]},
+           "derivatives": {"method": "savitzky_golay", "window": 15, "order": 3},
+           "terms": {"degree": 3, "variables": ["yaw_rate", "rudder"], "input_degree": 1},
+           "selection": {"threshold": 0.5},  # far too coarse: drops the damping terms
+           "bootstrap": {"members": 0}, "ranking": {"sr3": False}, "output": {"figures": False}}
+    result = discover.run(raw)
+    assert result.ranking.table.iloc[0]["candidate"] != "model"
+    assert any("not the identified model written to model.json" in w for w in result.warnings)
