@@ -220,41 +220,6 @@ def least_squares_candidate(name, source, library, support, blocks):
     return Candidate(name, source, tuple(library.names), coef)
 
 
-def sr3_candidates(pieces, library, thresholds):
-    """Candidates from SR3 (Zheng, Askham, Brunton, Kutz & Aravkin 2019), pysindy's
-    implementation, on our scaled library matrix; each support is refitted by least squares.
-
-    With the L0 regulariser the relaxed coefficients are hard-thresholded at
-    sqrt(2·λ·ν); λ is set so that this equals each dimensionless threshold.
-    """
-    import warnings
-
-    from pysindy.optimizers import SR3
-
-    from .selection import Scale, block_grams, least_squares_gram, scaled_problem
-
-    theta = np.vstack([p[1] for p in pieces])
-    x_dot = np.vstack([p[2] for p in pieces])
-    blocks = block_grams([(0, theta, x_dot)])
-    total, count = blocks.total()
-    k = len(library)
-    scale = Scale.from_gram(total, count, k)
-    theta_s = theta / scale.terms
-    x_dot_s = x_dot / scale.targets
-    g, b = scaled_problem(total, count, k, scale)
-    out = []
-    for threshold in thresholds:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            opt = SR3(reg_weight_lam=threshold**2 / 2.0, relax_coeff_nu=1.0, regularizer="L0", max_iter=200)
-            opt.fit(theta_s / np.sqrt(count), x_dot_s / np.sqrt(count))
-        support = (opt.coef_.T != 0) & ~scale.zero[:, None]
-        if support.any():
-            coef = scale.to_units(least_squares_gram(g, b, support))
-            out.append(Candidate(f"SR3 threshold {threshold:.3g}", "sr3", tuple(library.names), coef))
-    return out
-
-
 # --------------------------------------------------------------------------- scoring
 
 
