@@ -62,11 +62,15 @@ def build_parser():
                                      "scipy's solve_ivp), LaTeX equations, the A, B matrices of a "
                                      "linear model, or a linearization at an operating point.")
     exp.add_argument("model", help="path to model.json")
-    exp.add_argument("--to", required=True, choices=FORMATS)
+    exp.add_argument("--to", required=True, choices=FORMATS,
+                     help="the format (required): " + ", ".join(FORMATS) + "; see the README's export table")
     exp.add_argument("--out", help="file to write (.csv for matrices as a table; default: standard output)")
     exp.add_argument("--x-op", dest="x_op", help="state operating point, comma-separated in state order "
-                                                 "(write --x-op=-1,2 for a leading minus)")
-    exp.add_argument("--u-op", dest="u_op", help="input operating point, comma-separated in input order")
+                                                 "(write --x-op=-1,2 for a leading minus; required for "
+                                                 "linearize, no default)")
+    exp.add_argument("--u-op", dest="u_op", help="input operating point, comma-separated in input order "
+                                                 "(required for linearize when the model has inputs, no "
+                                                 "default)")
     sim = sub.add_parser("simulate", help="simulate a saved model on a run's recorded input",
                          description="Simulate model.json from the first sample of a run file, "
                                      "with that run's recorded input, and print the fit.")

@@ -176,6 +176,11 @@ def _residuals(result):
                             caption=f"input excitation in the training runs (band: {100 * excitation.power:.0f} % "
                                     "of the power; order on samples one correlation length apart)",
                             numeric=(1, 2, 3)))
+    low, high = result.validation_ranges()
+    names = list(result.model.state_names) + list(result.model.input_names)
+    parts.append(_table(["state or input", "training min", "training max"],
+                        [[n, _number(a), _number(b)] for n, a, b in zip(names, low, high)],
+                        caption="range covered by the training runs", numeric=(1, 2)))
     outside = [m for check in diagnostics.extrapolation for m in check.messages]
     parts.append(_paragraph("; ".join(outside) + "." if outside else
                             "Every held-out run stays inside the training range of every state and input."))

@@ -67,6 +67,13 @@ class Result:
         return pd.DataFrame(rows, columns=["run", "state", "rmse", "nrmse", "nrmse_fit_percent", "diverged",
                                            "band_coverage", "members_diverged"])
 
+    def validation_ranges(self):
+        """(min, max) over the training runs of every state, then every input (exact, also when read in chunks)."""
+        ranges = [run.ranges() for run in self.training.runs]
+        low = np.concatenate([np.min([r[0] for r in ranges], axis=0), np.min([r[2] for r in ranges], axis=0)])
+        high = np.concatenate([np.max([r[1] for r in ranges], axis=0), np.max([r[3] for r in ranges], axis=0)])
+        return low, high
+
     def inclusion_table(self):
         """Every candidate term × state: inclusion probability and coefficient statistics."""
         if self.ensemble is None:

@@ -98,6 +98,17 @@ def cv_table(cv, state_names):
     return pd.DataFrame(rows)
 
 
+def _plain_log_ticks(ax, *axes):
+    """Log-axis tick labels as plain numbers: figures are drawn with math text off (names from
+    the data may hold "$"), and matplotlib's default log labels are math text."""
+    from matplotlib.ticker import FuncFormatter, NullFormatter
+
+    for name in axes:
+        axis = getattr(ax, f"{name}axis")
+        axis.set_major_formatter(FuncFormatter(lambda value, _: f"{value:g}"))
+        axis.set_minor_formatter(NullFormatter())
+
+
 def _pyplot():
     import matplotlib
 
@@ -118,6 +129,7 @@ def plot_cv_curve(cv, state_names):
         ax.axvline(cv.selected[i], color="0.4", linestyle="--", label="selected")
         ax.set_xscale("log")
         ax.set_yscale("log")
+        _plain_log_ticks(ax, "x", "y")
         ax.set_xlabel("threshold (dimensionless)")
         ax.set_ylabel("relative CV error of d/dt")
         ax.set_title(f"d({state})/dt")
@@ -308,18 +320,17 @@ def plot_pareto(table):
     front = table[table["pareto"] & ok].sort_values("n_terms")
     ax.plot(front["n_terms"], front["simulation_error"], color="black", marker="s", markersize=5,
             label="Pareto front", zorder=3)
-    # Labels of candidates at the same number of terms are stacked, so they never overlap.
-    stacked = {}
-    for _, row in table[ok].head(6).iterrows():
-        level = stacked.get(row["n_terms"], 0)
-        stacked[row["n_terms"]] = level + 1
+    # Labels take three heights in turn, so that neighbours never overlap.
+    for k, (_, row) in enumerate(table[ok].head(6).iterrows()):
         ax.annotate(f"#{row['rank']} Δ={row['delta_aicc']:.0f}", (row["n_terms"], row["simulation_error"]),
-                    textcoords="offset points", xytext=(6, 4 + 9 * level), fontsize=7)
+                    textcoords="offset points", xytext=(4, 5 + 11 * (k % 3)), fontsize=7,
+                    arrowprops={"arrowstyle": "-", "color": "0.6", "linewidth": 0.5})
     model = table[(table["candidate"] == "model") & ok]
     if len(model):
         ax.scatter(model["n_terms"], model["simulation_error"], marker="*", s=160, color="white",
                    edgecolor="black", linewidth=1.0, label="identified model", zorder=4)
     ax.set_yscale("log")
+    _plain_log_ticks(ax, "y")
     ax.set_xlabel("number of terms")
     ax.set_ylabel("held-out simulation error (mean NRMSE)")
     ax.legend(fontsize=8)
