@@ -156,7 +156,11 @@ def _terminate(signum, frame):
 def main(argv=None):
     if threading.current_thread() is threading.main_thread():
         signal.signal(signal.SIGTERM, _terminate)  # first, so that even a slow start is interruptible
-    parser = build_parser()
+    try:
+        parser = build_parser()
+    except KeyboardInterrupt:  # a signal while the modules load
+        print("discover: interrupted before starting; nothing was written.", file=sys.stderr)
+        return 130
     args = parser.parse_args(argv)
     session = {}
     try:
