@@ -14,7 +14,12 @@ import numpy as np
 from scipy.integrate import solve_ivp
 
 DIVERGED = "left the bounded region at t={t:.6g} (state {state!r})"
-NOT_FINITE = "its right-hand side is not finite at t={t:.6g}"
+NOT_FINITE = "its right-hand side is not finite (or crosses the bounded region in a vanishing time) at t={t:.6g}"
+#: A rate that would cross the whole bounded region in this fraction of the shortest sample
+#: step is no dynamics a solver can follow: the member is stopped at once (a coefficient
+#: such as 1e308 would otherwise make the solver shrink its step for hundreds of thousands
+#: of evaluations). Stiff physical systems stay many orders of magnitude below it.
+MIN_CROSSING_FRACTION = 1e-12
 TIME_LIMIT = "stopped at t={t:.6g}: the simulation took longer than the time limit of {limit:g} s"
 TOO_MANY_STEPS = ("stopped at t={t:.6g}: the solver evaluated the model {count} times without finishing "
                   "(a diverging or extremely stiff model)")
@@ -202,6 +207,9 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
     budget = EVALUATIONS_BASE + EVALUATIONS_PER_SAMPLE * len(t)
     evaluations = [0]
     first_bad = np.full(n_members, np.inf)  # first time each member's rhs was not finite
+    max_rate = None
+    if limits is not None and len(t) > 1:
+        max_rate = 2 * limits[1] / (MIN_CROSSING_FRACTION * float(np.min(np.diff(t))))
     if limits is not None:
         # A member that starts outside the region can never cross into it: stop it at once.
         center, half_width = limits
@@ -221,6 +229,8 @@ def simulate_batch(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rto
                 raise _Stopped(TIME_LIMIT.format(t=s, limit=time_limit))
             dx = rhs(flat.reshape(len(members), n_states), u_of(s), members)
             bad = ~np.isfinite(dx).all(axis=1)
+            if max_rate is not None:
+                bad |= (np.abs(dx) > max_rate).any(axis=1)
             if bad.any():
                 first_bad[members[bad]] = np.minimum(first_bad[members[bad]], s)
                 dx = np.where(bad[:, None], 0.0, dx)
@@ -320,7 +330,7 @@ def simulate(rhs, t, x0, u, *, interpolation="linear", method="LSODA", rtol=1e-6
             return Simulation(np.asarray(t, dtype=float), x, True, NOT_FINITE.format(t=stopped_at[0]))
         center, half_width = limits
         excess = np.abs(last - center) / half_width
-        if excess.max() < 1.0 - 1e-6 and stopped_at[0] > t[0]:
+        if excess.max() < 1.0 - 1e-6:
             # Stopped inside the region: the right-hand side itself turned non-finite.
             return Simulation(np.asarray(t, dtype=float), x, True, NOT_FINITE.format(t=stopped_at[0]))
         state = names[int(np.argmax(excess))]
