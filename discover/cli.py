@@ -119,10 +119,13 @@ def _rank(args, session):
 
     target = Path(args.save) if args.save else Path(args.out_dir) / "ranking_updated.csv"
     if not target.parent.is_dir():
-        raise OutputError(f"{target}: the folder {target.parent} does not exist; create it or choose "
-                          "another --save path.")
+        what = "is a file, not a folder" if target.parent.exists() else "does not exist"
+        raise OutputError(f"{target}: {target.parent} {what}; create the folder or choose another --save path.")
     if target.is_dir():
         raise OutputError(f"{target}: is a folder; give a file name for --save, e.g. {target / 'ranking.csv'}.")
+    if target.is_symlink() or (target.exists() and not is_ranking_table(target)):
+        raise OutputError(f"{target}: exists and is not a ranking table discover wrote, so it is not "
+                          "overwritten; give a new file name for --save.")
     table, criterion = rank_more(args.out_dir, args.hypotheses, allow_changed_data=args.allow_changed_data)
     try:
         handle, temporary = tempfile.mkstemp(prefix=".ranking-", dir=target.parent)
@@ -133,6 +136,15 @@ def _rank(args, session):
         raise OutputError(f"{target}: cannot write the table ({err.strerror}).") from None
     print("\n".join(ranking_lines(table, criterion, top=12)))
     print(f"Combined ranking written to {target}")
+
+
+def is_ranking_table(path):
+    """True for a CSV whose header is that of a ranking table (what --save may replace)."""
+    try:
+        with open(path, encoding="utf-8") as handle:
+            return handle.readline().startswith("rank,candidate,source,n_terms,")
+    except (OSError, UnicodeDecodeError):
+        return False
 
 
 def _export(args, session):

@@ -39,7 +39,7 @@ def load_config(source):
         path = Path(source)
         where, base = str(path), path.resolve().parent
         try:
-            raw = tomllib.loads(path.read_bytes().decode("utf-8"))
+            raw = tomllib.loads(path.read_bytes().decode("utf-8-sig"))  # a byte-order mark is fine
         except FileNotFoundError:
             raise ConfigError(f"{path}: config file not found.") from None
         except IsADirectoryError:
@@ -100,6 +100,7 @@ def _effective(raw, where):
                 raise ConfigError(f"{where}: [{name}].{key} is required.")
             effective[name][key] = _check_value(where, name, key, spec, value)
     _normalize_names(effective["data"])
+    _normalize_term_names(effective["terms"])
     _check_relations(where, effective)
     effective["_notes"] = notes
     return effective
@@ -112,6 +113,13 @@ def _normalize_names(data):
     data["states"] = [norm(n) for n in data["states"]]
     data["inputs"] = [norm(n) for n in data["inputs"]]
     data["rename"] = {norm(k): v for k, v in data["rename"].items()}
+
+
+def _normalize_term_names(terms):
+    norm = lambda name: unicodedata.normalize("NFKC", name.strip())  # noqa: E731
+    for key in ("variables", "trig_variables"):
+        if terms[key] is not None:
+            terms[key] = [norm(n) for n in terms[key]]
 
 
 def _derivative_keys(where, table):
@@ -232,6 +240,11 @@ def _check_relations(where, config):
     data, sel, terms = config["data"], config["selection"], config["terms"]
     if not data["states"]:
         raise ConfigError(f"{where}: [data].states must name at least one state column.")
+    if not data["files"]:
+        raise ConfigError(f"{where}: [data].files must list at least one file or glob pattern.")
+    if data["time"] in list(data["states"]) + list(data["inputs"]):
+        raise ConfigError(f"{where}: [data].time = {data['time']!r} is also named in [data].states or "
+                          "[data].inputs; the time column cannot be a state or an input.")
     both = set(data["states"]) & set(data["inputs"])
     if both:
         raise ConfigError(

@@ -91,9 +91,12 @@ def resolve_files(patterns, base, where):
     files = []
     for pattern in patterns:
         full = pattern if Path(pattern).is_absolute() else os.path.normpath(Path(base) / pattern)
-        matches = sorted(glob.glob(full))
+        matches = sorted(m for m in glob.glob(full) if not os.path.isdir(m))
         if not matches:
-            raise DataError(f"{where}: [data].files pattern {pattern!r} matches no file (looked in {base}).")
+            folders = [m for m in glob.glob(full) if os.path.isdir(m)]
+            hint = (f" It names the folder {folders[0]}; give the files in it, e.g. "
+                    f"{os.path.join(pattern, '*.csv')!r}." if folders else "")
+            raise DataError(f"{where}: [data].files pattern {pattern!r} matches no file (looked in {base}).{hint}")
         files.extend(m for m in matches if m not in files)
     return [Path(f) for f in files]
 

@@ -139,11 +139,20 @@ def from_dict(document, where="model"):
     equations = document.get("equations")
     if not isinstance(equations, list):
         _fail(where, "'equations' must be a list with one entry per state.")
+    if len(set(states)) != len(states) or set(states) & set(inputs) or len(set(inputs)) != len(inputs):
+        _fail(where, f"'states' and 'inputs' must be distinct names. Got states {states}, inputs {inputs}.")
+    described = [e.get("state") if isinstance(e, dict) else None for e in equations]
+    missing = [s for s in states if s not in described]
+    if missing:
+        _fail(where, f"no equation for the state(s) {missing}; every state needs one (with \"terms\": [] for "
+                     "dx/dt = 0).")
     terms, entries = [], {}
     for k, equation in enumerate(equations):
         state = equation.get("state") if isinstance(equation, dict) else None
         if state not in states:
             _fail(where, f"equations[{k}].state must be one of {states}. Got {state!r}.")
+        if described.index(state) != k:
+            _fail(where, f"equations[{k}] is a second equation for {state!r}; give each state one equation.")
         listed = equation.get("terms", [])
         if not isinstance(listed, list):
             _fail(where, f"equations[{k}].terms must be a list of {{\"expr\": ..., \"coefficient\": ...}} "
@@ -156,6 +165,9 @@ def from_dict(document, where="model"):
             if not isinstance(expr, str) or not _is_real(coefficient):
                 _fail(where, f"equations[{k}].terms[{m}] needs a string 'expr' and a finite number "
                              f"'coefficient' (not a boolean, NaN or infinity). Got {coefficient!r}.")
+            if (expr, state) in entries:
+                _fail(where, f"equations[{k}].terms[{m}]: the term {expr!r} appears twice in the equation of "
+                             f"{state!r}; give each term once.")
             if expr not in terms:
                 terms.append(expr)
             entries[(expr, state)] = term

@@ -108,8 +108,35 @@ def check_target(target, *, force, inputs=()):
             if _inside(item, real):
                 raise OutputError(f"{shown}: holds an input of this run ({item}); discover never "
                                   "replaces a folder with its own inputs. Choose another folder with --out.")
+        foreign = foreign_entries(path)
+        if foreign:
+            listed = ", ".join(foreign[:3]) + (f" and {len(foreign) - 3} more" if len(foreign) > 3 else "")
+            raise OutputError(f"{shown}: holds {listed}, which discover did not write, so it is not replaced, "
+                              "not even with --force. Move them out, or choose another folder with --out.")
     _check_parent(path, shown)
     return path
+
+
+def foreign_entries(folder):
+    """Entries under an earlier output that its marker does not list (files a user added, mount
+    points, anything else); links are not followed. Empty means discover wrote all of it."""
+    folder = Path(folder)
+    try:
+        listed = set(json.loads((folder / MARKER).read_text()).get("files", []))
+    except (OSError, ValueError, AttributeError):
+        listed = set()
+    found = []
+    for root, dirs, files in os.walk(folder):
+        here = Path(root)
+        for name in sorted(dirs):
+            if os.path.ismount(here / name) or (here / name).is_symlink():
+                found.append(str((here / name).relative_to(folder)))
+        dirs[:] = [d for d in sorted(dirs) if not os.path.ismount(here / d) and not (here / d).is_symlink()]
+        for name in sorted(files):
+            relative = str((here / name).relative_to(folder))
+            if relative != MARKER and relative not in listed:
+                found.append(relative)
+    return found
 
 
 def _check_parent(path, shown):
@@ -216,6 +243,7 @@ class OutputClaim:
             staging.mkdir()
             write_marker(staging)
             write_files(staging)
+            write_marker(staging, listing=True)  # now with the files written, for a later --force
         except OSError as err:
             _remove(staging)
             where = f" ({err.filename})" if err.filename else ""
@@ -301,8 +329,14 @@ def glob_escape(text):
     return "".join(f"[{c}]" if c in "*?[]" else c for c in text)
 
 
-def write_marker(folder):
-    (Path(folder) / MARKER).write_text(json.dumps({"format": MARKER_FORMAT}) + "\n")
+def write_marker(folder, *, listing=False):
+    """The marker; with ``listing``, also every file discover wrote there (relative paths)."""
+    folder = Path(folder)
+    record = {"format": MARKER_FORMAT}
+    if listing:
+        record["files"] = sorted(str(p.relative_to(folder)) for p in folder.rglob("*")
+                                 if p.is_file() and p.name != MARKER)
+    (folder / MARKER).write_text(json.dumps(record, indent=1) + "\n")
 
 
 # --------------------------------------------------------------------------- the files

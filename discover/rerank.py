@@ -40,6 +40,12 @@ def read_hypotheses(path):
 def check_same_data(record, runs, out_dir):
     """Refuse data files whose bytes differ from those the earlier run read."""
     recorded = {str(Path(f["path"]).resolve()): f.get("sha256") for f in record.get("data_files", [])}
+    present = {str(Path(run.source).resolve()) for run in runs}
+    gone = sorted(set(recorded) - present)
+    if gone:
+        raise DataError(f"{gone[0]}: was a data file of {out_dir} (see its provenance.json) but is not among the "
+                        "runs now; the new scores would not be comparable. Put it back, or pass "
+                        "--allow-changed-data to score anyway.")
     for run in runs:
         path = str(Path(run.source).resolve())
         if path not in recorded:

@@ -136,8 +136,8 @@ def test_stale_staging_of_a_killed_run_is_removed_and_an_aside_result_put_back(w
     foreign.mkdir()
     aside = workdir / "out" / ".ship.old-1234"  # a swap cut between its two renames
     aside.mkdir()
-    write_marker(aside)
     (aside / "model.json").write_text("previous")
+    write_marker(aside, listing=True)
     with OutputClaim("out/ship", force=True) as claim:
         assert not dead.exists() and foreign.exists()
         assert (workdir / "out/ship/model.json").read_text() == "previous"  # put back at once
@@ -254,3 +254,20 @@ def test_marker_is_in_every_run_output(tmp_path):
     result = run(ROOT / "configs" / "ship.toml")
     out = write_outputs(result, tmp_path / "ship")
     assert (out / MARKER).is_file() and is_discover_output(out)
+
+
+def test_force_refuses_an_earlier_output_holding_files_discover_did_not_write(workdir):
+    # A user's notes or a mounted/linked folder inside an earlier output must survive --force.
+    out = publish("out/ship", "old")
+    (out / "notes.txt").write_text("my notes")
+    with pytest.raises(OutputError, match="holds notes.txt, which discover did not write"):
+        publish("out/ship", force=True)
+    assert (out / "notes.txt").read_text() == "my notes"
+    (out / "notes.txt").unlink()
+    os.symlink(workdir / "data", out / "linked")
+    with pytest.raises(OutputError, match="holds linked, which discover did not write"):
+        publish("out/ship", force=True)
+    assert (workdir / "data" / "run1.csv").exists()
+    (out / "linked").unlink()
+    publish("out/ship", "new", force=True)  # only what discover wrote: replaced
+    assert (out / "model.json").read_text() == "new"

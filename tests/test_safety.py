@@ -71,10 +71,15 @@ def test_infinite_coefficient_is_refused_at_load(tmp_path):
 
 
 def test_simulation_time_limit_stops_a_slow_solve():
-    # A stiff system with an explicit method takes a very long time: stopped at the limit.
+    # A stiff system with an explicit method and a slow right-hand side (1 ms an evaluation):
+    # the wall-clock limit stops it long before the evaluation budget would.
+    def slow(x, u):
+        time.sleep(0.001)
+        return -1e6 * (x - np.cos(1e3 * np.atleast_1d(x)))
+
     t = np.linspace(0, 1000, 50)
-    result = sim_module.simulate(lambda x, u: -1e6 * (x - np.cos(1e3 * np.atleast_1d(x))), t, np.array([1.0]),
-                                 np.empty((50, 0)), method="RK45", rtol=1e-10, atol=1e-12, time_limit=0.5)
+    result = sim_module.simulate(slow, t, np.array([1.0]), np.empty((50, 0)), method="RK45", rtol=1e-10,
+                                 atol=1e-12, time_limit=0.5)
     assert result.diverged and "time limit of 0.5 s" in result.message
 
 
@@ -300,3 +305,57 @@ def test_effective_config_runs_again_as_it_is(tmp_path):
     first = discover.write_outputs(discover.run(path), tmp_path / "out1")
     again = discover.write_outputs(discover.run(first / "config_effective.toml"), tmp_path / "out2")
     assert (first / "model.json").read_text() == (again / "model.json").read_text()
+
+
+def test_rank_save_never_overwrites_a_file_that_is_not_a_ranking_table(tmp_path, capsys):
+    out, hypotheses = _ranked_run(tmp_path)
+    data_file = tmp_path / "b.csv"
+    before = data_file.read_bytes()
+    assert main(["rank", str(out), str(hypotheses), "--save", str(data_file)]) == 6
+    assert "is not a ranking table discover wrote" in capsys.readouterr().err
+    assert data_file.read_bytes() == before
+    tables = tmp_path / "tables"
+    tables.mkdir()
+    assert main(["rank", str(out), str(hypotheses), "--save", str(tables / "r.csv")]) == 0
+    assert main(["rank", str(out), str(hypotheses), "--save", str(tables / "r.csv")]) == 0  # its own table
+
+
+def test_rank_refuses_when_a_data_file_of_the_run_is_gone(tmp_path):
+    from discover.data import Run
+    from discover.rerank import check_same_data
+
+    record = {"data_files": [{"path": str(tmp_path / "a.csv"), "sha256": "1"},
+                             {"path": str(tmp_path / "b.csv"), "sha256": "2"}]}
+    now = [Run("b", np.empty(0), np.empty((0, 1)), np.empty((0, 1)), source=str(tmp_path / "b.csv"), sha256="2")]
+    with pytest.raises(discover.DataError, match="a.csv: was a data file of .* not among the runs now"):
+        check_same_data(record, now, tmp_path / "out")
+
+
+@pytest.mark.parametrize("change, why", [
+    (lambda d: d["equations"].append({"state": "x", "terms": [{"expr": "u", "coefficient": 5.0}]}),
+     "second equation for 'x'"),
+    (lambda d: d["equations"][0]["terms"].append({"expr": "x", "coefficient": 2.0}), "appears twice"),
+    (lambda d: d.update(equations=[]), "no equation for the state"),
+    (lambda d: d.update(states=["x", "x"]), "distinct names"),
+])
+def test_inconsistent_model_files_are_refused(change, why):
+    doc = model_document()
+    change(doc)
+    with pytest.raises(ModelFileError, match=why):
+        from_dict(doc, where="model.json")
+
+
+def test_time_column_cannot_be_a_state(tmp_path):
+    decay_run(tmp_path, "a")
+    with pytest.raises(ConfigError, match=r"\[data\].time = 't' is also named"):
+        discover.run(small_config(tmp_path, states=["t", "x"]))
+
+
+def test_compatibility_characters_in_term_variables_and_a_byte_order_mark(tmp_path):
+    frame = decay_run(tmp_path, "a")
+    frame.rename(columns={"x": "\u2126"}).to_csv(tmp_path / "a.csv", index=False)
+    config = tmp_path / "c.toml"
+    text = (f'[data]\nfiles = ["{tmp_path}/*.csv"]\nstates = ["\u2126"]\ninputs = ["u"]\nheld_out_count = 0\n'
+            '[terms]\nvariables = ["\u2126", "u"]\n[bootstrap]\nmembers = 0\n[ranking]\nenabled = false\n')
+    config.write_bytes(b"\xef\xbb\xbf" + text.encode("utf-8"))  # a UTF-8 byte-order mark, as some editors write
+    assert discover.run(config).model.state_names == ("\u03a9",)
