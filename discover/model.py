@@ -70,7 +70,13 @@ class Model:
         u2 = np.asarray(u, dtype=float)
         u2 = np.empty((len(x2), 0)) if n_inputs == 0 else np.broadcast_to(u2.reshape(-1, n_inputs),
                                                                             (len(x2), n_inputs))
-        dx = self._evaluate(np.hstack([x2, u2])) @ self._coef_used
+        theta = self._evaluate(np.hstack([x2, u2]))
+        dx = theta @ self._coef_used
+        if not np.isfinite(dx).all():
+            # A non-finite term must not spoil equations that do not contain it (0 · inf is NaN).
+            kept = self._coef_used != 0
+            dx = np.stack([theta[:, kept[:, i]] @ self._coef_used[kept[:, i], i]
+                           for i in range(dx.shape[1])], axis=1)
         return dx[0] if single else dx
 
     def simulate(self, t, x0, u=None, *, interpolation="linear", method="LSODA", rtol=1e-6,
