@@ -265,6 +265,12 @@ class OutputClaim:
             aside = self.path.parent / f".{self.path.name}{_ASIDE}{secrets.token_hex(4)}"
         else:
             aside = None
+        if aside is not None and _exchange(staging, self.path):
+            # One atomic step: the new result is in place and the previous one sits in the staging
+            # folder, so no moment leaves the target empty, not even for kill -9.
+            self.state = "new result in place"
+            _remove(staging)
+            return self.path
         blocked = _block_signals()
         try:
             if aside is not None:
@@ -301,6 +307,21 @@ class OutputClaim:
             raise OutputError(f"{self.shown}: could not move the new result into place ({err.strerror}); "
                               "the previous result, if any, is as it was.") from None
         raise err
+
+
+def _exchange(first, second):
+    """Swap two folders atomically (Linux renameat2 with RENAME_EXCHANGE); False where unavailable."""
+    try:
+        import ctypes
+        import ctypes.util
+
+        libc = ctypes.CDLL(ctypes.util.find_library("c") or None, use_errno=True)
+        renameat2 = libc.renameat2
+    except (OSError, AttributeError):
+        return False
+    at_fdcwd, rename_exchange = -100, 2
+    done = renameat2(at_fdcwd, os.fsencode(first), at_fdcwd, os.fsencode(second), rename_exchange)
+    return done == 0
 
 
 def _remove(folder):
