@@ -1,21 +1,25 @@
 """The ranking stage: collect candidate structures, score them on equal footing, rank them.
 
-Candidates are the identified model, every distinct term set along the threshold path,
-the fits of other libraries, the user's hypotheses and the SR3 supports, all fitted from
-block Grams (:mod:`discover.grams`); :func:`rank_candidates` simulates them on the same
-runs (held-out runs, else the training runs) and orders them (:mod:`discover.ranking`).
+Candidates are the ensemble's model, the supports at other inclusion levels of the
+ensemble, every distinct term set along the threshold path, the fits of other
+libraries, the user's hypotheses and the SR3 supports, all fitted from block Grams
+(:mod:`discover.grams`). :func:`rank_candidates` simulates them on data not used to fit
+them (cross-validation folds of the training runs and the held-out runs, see
+:mod:`discover.choice`) and orders them, the recommended one first
+(:mod:`discover.ranking`).
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
 
-from . import ranking
+from . import choice, ranking
 from .grams import fold_labels, library_for
 from .selection import select_terms, threshold_grid
+from .smoothing import smooth_runs
 from .sr3 import sr3_candidates_gram
 from .terms import build_library, term_key
 
@@ -65,15 +69,26 @@ def hypothesis_candidate(settings, hypothesis, model, backend, plan):
                                            support, backend.grams(library, plan).blocks)
 
 
-def collect_candidates(settings, model, gram_blocks, library, backend):
-    """The model itself, the user's hypotheses, the threshold path, other libraries and SR3."""
+#: Inclusion probabilities at which the ensemble's supports become candidates too.
+INCLUSION_LEVELS = (0.3, 0.7, 0.9)
+
+
+def collect_candidates(settings, model, gram_blocks, library, backend, inclusion=None):
+    """The model itself, the user's hypotheses, other inclusion levels, the threshold path,
+    other libraries and SR3."""
     sel, rank_cfg = settings.selection, settings.ranking
     grid = threshold_grid(sel)
     blocks, plan = gram_blocks.blocks, gram_blocks.plan
     # Order matters for names: a duplicate term set keeps the first name (user's names first).
-    candidates = [ranking.Candidate("model", "model", model.terms, model.coef)]
+    candidates = [ranking.Candidate("model", "model", model.terms, model.coef, blocks=blocks)]
     for hypothesis in rank_cfg.hypotheses:
         candidates.append(hypothesis_candidate(settings, hypothesis, model, backend, plan))
+    if inclusion is not None:
+        for level in INCLUSION_LEVELS:
+            support = inclusion >= level
+            if support.any():
+                candidates.append(ranking.least_squares_candidate(
+                    f"ensemble inclusion >= {level:g}", "ensemble", library, support, blocks))
     if rank_cfg.path:
         candidates += ranking.path_candidates(blocks, library, grid, ridge=sel.ridge, max_iter=sel.max_iter,
                                               label="path")
@@ -83,21 +98,52 @@ def collect_candidates(settings, model, gram_blocks, library, backend):
         folds, split = fold_labels(other_blocks, sel.cv_folds, sel.cv_split)
         fit = select_terms(sel, other_blocks, folds, settings.data.states, split=split)
         candidates.append(ranking.Candidate(f"library {table['name']!r} (cv)", "library", tuple(other.names),
-                                            fit.coef))
+                                            fit.coef, blocks=other_blocks))
         candidates += ranking.path_candidates(other_blocks, other, grid, ridge=sel.ridge, max_iter=sel.max_iter,
                                               label=f"library {table['name']!r}")
     if rank_cfg.sr3:
-        candidates += sr3_candidates_gram(blocks, library, grid)
+        candidates += [replace(c, blocks=blocks) for c in sr3_candidates_gram(blocks, library, grid)]
     return ranking.merge_duplicates(candidates, model.state_names)
 
 
-def rank_candidates(candidates, model, dataset, smoothed, settings, *, criterion, horizon, scored_on,
-                    inclusion=None, library_terms=None):
-    """Score candidates by simulation on ``dataset`` (with its smoothed runs) and order them."""
-    scores = ranking.score_candidates(
-        candidates, model.state_names, model.input_names, dataset.runs, smoothed.scoring_pairs(),
-        settings=settings, inclusion=inclusion, library_terms=library_terms, horizon=horizon,
-    )
+def rank_candidates(candidates, model, settings, *, training, smoothed, held_out, held_smoothed, simulation,
+                    folds=None, horizon=None, inclusion=None, library_terms=None):
+    """Score candidates by simulation on data not used to fit them, and order them.
+
+    Parameters
+    ----------
+    training, held_out : data.Dataset
+    smoothed, held_smoothed : smoothing.SmoothedRuns or None
+        Training runs (None when read in chunks: then only held-out runs, or the thin
+        training runs, are scored, with every candidate fitted on all data) and held-out runs.
+    folds : (labels, split) or None
+        CV fold of every training block, as the selection used them.
+    horizon : float or None
+        Simulation segment length (chaotic systems); None: whole stretches.
+    """
+    union = ranking.union_terms(candidates)
+    pieces, runs, pairs = [], [], []
+    if smoothed is not None and folds is not None:
+        labels, split = folds
+        pieces += choice.fold_pieces(candidates, union, smoothed, candidates[0].blocks, labels, simulation, horizon)
+        runs += list(training.runs)
+        pairs += smoothed.scoring_pairs()
+    n_cv = len(pieces)
+    if held_out.runs:
+        pieces += ranking.held_out_pieces(candidates, union, held_out.runs, held_smoothed.scoring_pairs(),
+                                          simulation, horizon)
+        runs += list(held_out.runs)
+        pairs = held_smoothed.scoring_pairs()  # one-step derivative errors on unseen data
+    if not pieces:  # chunked, nothing held out: the thin training runs, fitted on all of them
+        thin = smooth_runs(training, settings.derivatives)
+        pieces = ranking.held_out_pieces(candidates, union, training.runs, thin.scoring_pairs(), simulation,
+                                         horizon)
+        runs, pairs = list(training.runs), thin.scoring_pairs()
+    scores = ranking.score_candidates(candidates, model.state_names, model.input_names, runs, pairs,
+                                      settings=simulation, inclusion=inclusion, library_terms=library_terms,
+                                      pieces=pieces, union=union)
+    scored_on = choice.scoring_description(folds[1] if folds else None, n_cv, bool(held_out.runs))
     first_run = {c.name: score["first_run"] for c, score in zip(candidates, scores)}
+    criterion = settings.ranking.criterion
     return Ranking(ranking.score_table(candidates, scores, criterion), tuple(candidates), criterion, scored_on,
                    first_run)

@@ -287,6 +287,7 @@ def _check_relations(where, config):
     for i, text in enumerate(terms["custom"]):
         parse_expression(text, list(data["states"]) + list(data["inputs"]), where=f"{where}: [terms].custom[{i}]")
     _check_ranking(where, config)
+    _check_choose(where, config)
     known = set(data["states"]) | set(data["inputs"])
     for key in ("variables", "trig_variables"):
         for name in terms[key] or []:
@@ -348,6 +349,14 @@ def _check_ranking(where, config):
                                   f"e.g. {data['states'][0]} = [\"...\"].")
             checked.append(table)
         ranking[kind] = checked
+
+
+def _check_choose(where, config):
+    choose = config["ranking"]["choose"]
+    names = [h["name"] for h in config["ranking"]["hypotheses"]]
+    if choose not in ("recommended", "lowest", "ensemble") and choose not in names:
+        raise ConfigError(f"{where}: [ranking].choose = {choose!r} is none of 'recommended', 'lowest', 'ensemble' "
+                          f"or the name of a [[ranking.hypotheses]] entry ({', '.join(map(repr, names)) or 'none given'}).")
 
 
 def with_hypotheses(settings, hypotheses_raw, where):

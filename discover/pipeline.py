@@ -13,12 +13,14 @@ import numpy as np
 import pandas as pd
 
 from . import bootstrap, compute, resources
+from . import choice
 from .candidates import Ranking, collect_candidates, rank_candidates
 from .config import Settings, load_config
 from .data import Dataset, check_excitation, data_warnings, load_dataset
 from .grams import (ChunkedBackend, MemoryBackend, check_collinear_terms, check_library_size, fold_labels,
                     library_for, make_plan)
 from .model import Model
+from .output_error import OutputFit, refine_model
 from .selection import Selection, select_terms
 from .simulate import SimulationSettings, simulation_settings
 from .smoothing import SmoothedRuns, resolve_trim, smooth_runs
@@ -43,6 +45,7 @@ class Result:
     ensemble: bootstrap.Ensemble | None = None
     ranking: Ranking | None = None
     diagnostics: Diagnostics | None = None
+    output_fit: OutputFit | None = None
     timings: dict = field(default_factory=dict)  # wall-clock seconds per stage
 
     @property
@@ -79,10 +82,11 @@ class Result:
         if self.ensemble is None:
             return None
         rows = []
+        written = {(state, term): value for state, kept in self.model.equations() for term, value, _ in kept}
         for i, state in enumerate(self.model.state_names):
             for j, term in enumerate(self.library_terms):
-                row = {"state": state, "term": term, "in_model": bool(self.model.coef[j, i] != 0),
-                       "coefficient": self.model.coef[j, i]}
+                row = {"state": state, "term": term, "in_model": (state, term) in written,
+                       "coefficient": written.get((state, term), 0.0)}
                 row.update({name: values[j, i] for name, values in self.ensemble.summary.as_stats().items()})
                 rows.append(row)
         return pd.DataFrame(rows)
@@ -179,31 +183,48 @@ def _run(settings, executor, progress):
         model = bootstrap.ensemble_model(settings.bootstrap, single, ensemble, gram_blocks.blocks)
     clock.done("ensemble")
     held_smoothed = smooth_runs(held_out, settings.derivatives)
+    ranking, choice_notes = None, []
+    if settings.ranking.enabled:
+        inclusion = ensemble.summary.inclusion_probability if ensemble else None
+        candidates = collect_candidates(settings, model, gram_blocks, library, backend, inclusion)
+        horizon = settings.ranking.horizon
+        if horizon is None and smoothed is not None:
+            horizon = choice.predictability_horizon(single, smoothed, backend.noise(), simulation)
+            if horizon is not None:
+                choice_notes.append(f"Nearby trajectories of the model separate within {horizon:.4g} time units; "
+                                    "candidates were scored on segments of that length.")
+        ranking = rank_candidates(candidates, model, settings, training=training, smoothed=smoothed,
+                                  held_out=held_out, held_smoothed=held_smoothed, simulation=simulation,
+                                  folds=(folds, split), horizon=horizon, inclusion=inclusion,
+                                  library_terms=library.names)
+        name, note = choice.written_candidate(ranking.table, settings.ranking.choose,
+                                              [h["name"] for h in settings.ranking.hypotheses])
+        choice_notes += [note] if note else []
+        model = choice.chosen_model(model, ranking, name, horizon)
+        clock.done("ranking")
+    output_fit = None
+    if settings.refine.enabled and smoothed is not None:
+        output_fit = refine_model(model, training, smoothed, settings.refine, simulation,
+                                  settings.simulation.divergence_factor)
+        model = output_fit.model
+        choice_notes += [output_fit.note] if output_fit.note else []
+        clock.done("refinement")
+    elif settings.refine.enabled:
+        choice_notes.append("The output-error refinement was skipped: it needs the training runs in memory "
+                            "(unset [data].chunk_rows, or set [refine].enabled = false to silence this).")
     validation = validate_runs(model, held_smoothed, held_out, simulation)
     if ensemble is not None and settings.bootstrap.bands:
-        validation = with_bands(validation, model, ensemble, simulation, backend.noise(),
+        validation = with_bands(validation, single, ensemble, simulation, backend.noise(),
                                 level=settings.bootstrap.level, seed=settings.seed)
     diagnostics = diagnose(model, training, held_out, smoothed, held_smoothed, library.names)
     clock.done("validation")
-    ranking, ranking_notes = None, []
-    if settings.ranking.enabled:
-        candidates = collect_candidates(settings, model, gram_blocks, library, backend)
-        scored = (held_out, held_smoothed, "held-out runs") if held_out.runs else (training, smoothed, "training runs")
-        ranking = rank_candidates(candidates, model, scored[0], scored[1], simulation,
-                                  criterion=settings.ranking.criterion, horizon=settings.ranking.horizon,
-                                  scored_on=scored[2], library_terms=library.names,
-                                  inclusion=ensemble.summary.inclusion_probability if ensemble else None)
-        if not held_out.runs:
-            ranking_notes.append("The ranking scored candidates on the training runs (no run is held out).")
-        best = ranking.table.iloc[0] if len(ranking.table) else None
-        if best is not None and best["candidate"] != "model":
-            ranking_notes.append(
-                f"The ranking puts {best['candidate']!r} ({best['n_terms']} terms) first, not the identified model "
-                "written to model.json; compare them in ranking.csv and candidates.json before choosing.")
-        clock.done("ranking")
+    ranking_notes = choice_notes
+    if ranking is not None and ranking.scored_on == "the training runs":
+        ranking_notes.append("The ranking scored candidates on the training runs they were fitted on "
+                             "(no run is held out and the runs were read in chunks).")
     warnings = (list(settings.notes) + data_warnings(training, held_out) + list(selection.warnings) + ranking_notes
                 + validation_warnings(validation, settings.bootstrap.members) + list(diagnostics.warnings))
     if not held_out.runs:
         warnings.append("No run is held out: the model is not validated on unseen data.")
     return Result(settings, model, tuple(library.names), selection, training, held_out, smoothed, validation,
-                  tuple(warnings), single, simulation, ensemble, ranking, diagnostics, clock.seconds)
+                  tuple(warnings), single, simulation, ensemble, ranking, diagnostics, output_fit, clock.seconds)

@@ -105,15 +105,27 @@ SCHEMA = {
     },
     "ranking": {
         "enabled": Key("bool", True),
-        "criterion": Key("str", "aicc", choices=("aicc", "aic", "bic", "simulation_error", "derivative_error")),
+        # "simulation": deviance of the free-run error with an effective sample size (discover.ranking).
+        "criterion": Key("str", "simulation", choices=("simulation", "aicc", "aic", "bic", "simulation_error",
+                                                       "derivative_error")),
+        # Which candidate model.json holds: "recommended", "lowest", "ensemble" or a hypothesis name.
+        "choose": Key("str", "recommended"),
         "path": Key("bool", True),
         "sr3": Key("bool", True),
         "top": Key("int", 3, minimum=1, maximum=10),
-        # Score on segments of this many time units, each from the measured state (None: whole runs).
+        # Score on segments of this many time units, each from the measured state (None: measured from
+        # how fast nearby trajectories separate; whole runs when they do not).
         "horizon": Key("float", None, minimum=0.0, nullable=True),
         # Arrays of tables, checked in _check_ranking:
         "libraries": Key("table_list", []),
         "hypotheses": Key("table_list", []),
+    },
+    "refine": {
+        # Refit the chosen structure's coefficients by output error (multiple shooting).
+        "enabled": Key("bool", True),
+        "max_evaluations": Key("int", 200, minimum=1, maximum=100000),
+        "time_limit": Key("float", 120.0, minimum=0.1),  # seconds; at the limit the fit is not applied
+        "level": Key("float", 0.9, minimum=0.5, maximum=0.999),  # of the coefficient intervals
     },
     "compute": {
         # None: this process; "local": a Dask LocalCluster; "tcp://host:8786": that scheduler.
@@ -226,6 +238,7 @@ class Settings:
     bootstrap: object
     simulation: object
     ranking: object
+    refine: object
     compute: object
     output: object
     source: str = "config"
