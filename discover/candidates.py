@@ -106,9 +106,18 @@ def collect_candidates(settings, model, gram_blocks, library, backend, inclusion
     return ranking.merge_duplicates(candidates, model.state_names)
 
 
-def rank_candidates(candidates, model, settings, *, training, smoothed, held_out, held_smoothed, simulation,
-                    folds=None, horizon=None, inclusion=None, library_terms=None):
-    """Score candidates by simulation on data not used to fit them, and order them.
+def rank_candidates(candidates, model, settings, **scoring):
+    """Score candidates by simulation on data not used to fit them (:func:`score_unseen`), order them."""
+    scores, scored_on = score_unseen(candidates, model, settings, **scoring)
+    first_run = {c.name: score["first_run"] for c, score in zip(candidates, scores)}
+    criterion = settings.ranking.criterion
+    return Ranking(ranking.score_table(candidates, scores, criterion), tuple(candidates), criterion, scored_on,
+                   first_run)
+
+
+def score_unseen(candidates, model, settings, *, training, smoothed, held_out, held_smoothed, simulation,
+                 folds=None, horizon=None, inclusion=None, library_terms=None):
+    """Every candidate's scores (:func:`discover.ranking.score_candidates`) and what they were scored on.
 
     Parameters
     ----------
@@ -124,8 +133,8 @@ def rank_candidates(candidates, model, settings, *, training, smoothed, held_out
     union = ranking.union_terms(candidates)
     pieces, runs, pairs = [], [], []
     if smoothed is not None and folds is not None:
-        labels, split = folds
-        pieces += choice.fold_pieces(candidates, union, smoothed, candidates[0].blocks, labels, simulation, horizon)
+        pieces += choice.fold_pieces(candidates, union, smoothed, candidates[0].blocks, folds[0], simulation,
+                                     horizon)
         runs += list(training.runs)
         pairs += smoothed.scoring_pairs()
     n_cv = len(pieces)
@@ -142,8 +151,4 @@ def rank_candidates(candidates, model, settings, *, training, smoothed, held_out
     scores = ranking.score_candidates(candidates, model.state_names, model.input_names, runs, pairs,
                                       settings=simulation, inclusion=inclusion, library_terms=library_terms,
                                       pieces=pieces, union=union)
-    scored_on = choice.scoring_description(folds[1] if folds else None, n_cv, bool(held_out.runs))
-    first_run = {c.name: score["first_run"] for c, score in zip(candidates, scores)}
-    criterion = settings.ranking.criterion
-    return Ranking(ranking.score_table(candidates, scores, criterion), tuple(candidates), criterion, scored_on,
-                   first_run)
+    return scores, choice.scoring_description(folds[1] if folds else None, n_cv, bool(held_out.runs))

@@ -255,8 +255,8 @@ def _ranking(result, figures):
 
     criterion = result.ranking.criterion
     columns = [("rank", "rank", str), ("candidate", "candidate", str), ("source", "source", str),
-               ("n_terms", "terms", str), ("aicc", "AICc", _number), ("delta_aicc", "ΔAICc", lambda v: _number(v, 3)),
-               ("akaike_weight", "weight", lambda v: _number(v, 2)), ("bic", "BIC", _number),
+               ("n_terms", "terms", str), ("deviance", "deviance", _number), ("delta", "Δ", lambda v: _number(v, 3)),
+               ("weight", "weight", lambda v: _number(v, 2)), ("n_effective", "effective samples", _number),
                ("simulation_error", "sim. error", _number), ("support", "support", str),
                ("pareto", "Pareto", lambda v: "yes" if v else "no")]
     columns = [c for c in columns if c[0] in table.columns]
@@ -268,11 +268,15 @@ def _ranking(result, figures):
         caption += f" (first {MAX_RANKING_ROWS}; ranking.csv has all)"
     parts = [
         _paragraph(why_chosen(table, criterion, result.ranking.scored_on)),
-        _paragraph(f"Ordered by {criterion}. ΔAICc ≤ 2: substantial support; > 10: essentially none. "
-                   f"The simulation error is the mean NRMSE of the free-run simulation on {scored_on}."),
+        _paragraph(f"Scored by {criterion} on {scored_on}: each candidate is simulated with the recorded "
+                   "inputs on data not used to fit it (a fold's coefficients come from the other folds). "
+                   "The deviance is n_eff·ln(RSS/n), with n_eff the effective number of independent samples of "
+                   "the autocorrelated residuals. Δ ≤ 2: substantial support; > 10: essentially none. Rank 1 is "
+                   "the fewest-term candidate within Δ ≤ 2 of the best, and it is the model this report "
+                   "describes. The simulation error is the mean NRMSE of those free runs."),
         _table([label for _, label, _ in columns], rows, numeric=numeric, caption=caption),
-        _figure(lambda: plot_pareto(table), png=figures.get("ranking_pareto.png"), caption="Number of terms against held-out simulation error; the Pareto "
-                                            "front joined, the best-ranked labelled #rank Δ=ΔAICc."),
+        _figure(lambda: plot_pareto(table), png=figures.get("ranking_pareto.png"), caption="Number of terms against the scored simulation error; the Pareto "
+                                            "front joined, the best-ranked labelled #rank Δ."),
     ]
     if result.validation and result.candidates:
         top = result.settings.ranking.top

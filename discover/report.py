@@ -298,11 +298,11 @@ def ranking_lines(table, criterion, top=8, *, scored_on="held-out runs"):
     from .ranking import why_chosen
 
     lines = [f"Ranking of {len(table)} candidate structures on the {scored_on} (by {criterion}; "
-             "ΔAICc ≤ 2 substantial support, > 10 essentially none):",
-             f"  {'rank':>4} {'terms':>5} {'ΔAICc':>9} {'weight':>6} {'sim. error':>10}  {'support':<16} candidate"]
+             "Δ ≤ 2 substantial support, > 10 essentially none; rank 1 is written to model.json):",
+             f"  {'rank':>4} {'terms':>5} {'Δ':>9} {'weight':>6} {'sim. error':>10}  {'support':<16} candidate"]
     for _, row in table.head(top).iterrows():
         flag = " (Pareto)" if row["pareto"] else ""
-        lines.append(f"  {row['rank']:>4} {row['n_terms']:>5} {row['delta_aicc']:>9.1f} {row['akaike_weight']:>6.2f} "
+        lines.append(f"  {row['rank']:>4} {row['n_terms']:>5} {row['delta']:>9.1f} {row['weight']:>6.2f} "
                      f"{row['simulation_error']:>10.4f}  {row['support']:<16} {row['candidate']}{flag}")
     if len(table) > top:
         lines.append(f"  ... {len(table) - top} more in ranking.csv")
@@ -311,7 +311,7 @@ def ranking_lines(table, criterion, top=8, *, scored_on="held-out runs"):
 
 
 def plot_pareto(table):
-    """Complexity against held-out simulation error, Pareto front joined, ΔAICc labelled."""
+    """Complexity against the scored simulation error, Pareto front joined, Δ labelled."""
     plt = _pyplot()
     fig, ax = plt.subplots(figsize=(6.4, 4.2))
     ok = np.isfinite(table["simulation_error"])
@@ -322,7 +322,7 @@ def plot_pareto(table):
             label="Pareto front", zorder=3)
     # Labels take three heights in turn, so that neighbours never overlap.
     for k, (_, row) in enumerate(table[ok].head(6).iterrows()):
-        ax.annotate(f"#{row['rank']} Δ={row['delta_aicc']:.0f}", (row["n_terms"], row["simulation_error"]),
+        ax.annotate(f"#{row['rank']} Δ={row['delta']:.0f}", (row["n_terms"], row["simulation_error"]),
                     textcoords="offset points", xytext=(4, 5 + 11 * (k % 3)), fontsize=7,
                     arrowprops={"arrowstyle": "-", "color": "0.6", "linewidth": 0.5})
     model = table[(table["candidate"] == "model") & ok]
@@ -332,7 +332,7 @@ def plot_pareto(table):
     ax.set_yscale("log")
     _plain_log_ticks(ax, "y")
     ax.set_xlabel("number of terms")
-    ax.set_ylabel("held-out simulation error (mean NRMSE)")
+    ax.set_ylabel("simulation error, scored (mean NRMSE)")
     ax.legend(fontsize=8)
     fig.tight_layout()
     return fig

@@ -9,12 +9,12 @@ from pathlib import Path
 import pandas as pd
 
 from . import ranking
-from .candidates import hypothesis_candidate
+from .candidates import hypothesis_candidate, score_unseen
 from .compute import Executor
 from .config import load_config, tomllib, with_hypotheses
 from .data import file_hash, load_dataset
 from .exceptions import ConfigError, DataError, OutputError
-from .grams import ChunkedBackend, MemoryBackend, make_plan
+from .grams import ChunkedBackend, MemoryBackend, fold_labels, make_plan
 from .model import load_model
 from .pipeline import resolve_simulation
 from .smoothing import resolve_trim, smooth_runs
@@ -97,11 +97,12 @@ def rank_more(out_dir, hypotheses_path, *, criterion=None, allow_changed_data=Fa
     plan = make_plan(backend, settings.selection.cv_folds, settings.bootstrap.block_length)
     candidates = [hypothesis_candidate(settings, h, model, backend, plan) for h in settings.ranking.hypotheses]
     training = backend.thin_training(training)
-    scored = held_out if held_out.runs else training  # as the run did when nothing was held out
-    scored_smooth = smooth_runs(scored, settings.derivatives) if held_out.runs else smoothed
-    scores = ranking.score_candidates(candidates, model.state_names, model.input_names, scored.runs,
-                                      scored_smooth.scoring_pairs(), settings=resolve_simulation(settings, training),
-                                      horizon=settings.ranking.horizon)
+    folds = fold_labels(candidates[0].blocks, settings.selection.cv_folds, settings.selection.cv_split)
+    # Scored as the run scored: the same folds, held-out runs and horizon.
+    horizon = model.info.get("choice", {}).get("horizon", settings.ranking.horizon)
+    scores, _ = score_unseen(candidates, model, settings, training=training, smoothed=smoothed, held_out=held_out,
+                             held_smoothed=smooth_runs(held_out, settings.derivatives),
+                             simulation=resolve_simulation(settings, training), folds=folds, horizon=horizon)
     new = ranking.score_table(candidates, scores, criterion)
     combined = pd.concat([old, new], ignore_index=True)
     combined["also"] = combined["also"].fillna("")

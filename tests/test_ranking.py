@@ -1,5 +1,6 @@
 """Ranking candidate structures (Mangan, Kutz, Brunton & Proctor 2017, Proc. R. Soc. A 473)."""
 
+import json
 from pathlib import Path
 
 import numpy as np
@@ -11,7 +12,9 @@ from discover import ranking
 from discover.cli import main
 from discover.config import validate
 from discover.exceptions import ExpressionError
+from discover.schema import to_toml
 from discover.selection import least_squares_gram
+from discover.terms import term_key
 from systems import LORENZ_INPUT_TRUTH, lorenz_runs, truth_map, write_runs
 
 statsmodels_api = pytest.importorskip("statsmodels.api")
@@ -67,7 +70,7 @@ def test_ship_true_structure_ranks_first_and_no_cubic_is_far_behind(ship):
     table = ship.ranking.table
     assert structure_of(ship, table.loc[0, "candidate"]) == truth
     row = table[table["candidate"] == "hypothesis 'no cubic damping'"].iloc[0]
-    assert row["rank"] > 1 and row["delta_aicc"] > 10
+    assert row["rank"] > 1 and row["delta"] > 10
 
 
 def test_lorenz_true_structure_on_pareto_front_and_first_among_path_candidates(tmp_path):
@@ -121,7 +124,10 @@ def test_rank_command_adds_hypotheses_without_changing_earlier_rows(tmp_path, ca
     after = pd.read_csv(out / "ranking_updated.csv")
     assert len(after) == len(before) + 1
     merged = after.set_index("candidate").loc[before["candidate"]]
-    np.testing.assert_allclose(merged["aicc"], before["aicc"].to_numpy())
+    # The earlier rows' own scores are kept as they were (nothing refitted); a worse
+    # newcomer leaves their deviances as they were too.
+    np.testing.assert_allclose(merged["rss"], before["rss"].to_numpy())
+    np.testing.assert_allclose(merged["deviance"], before["deviance"].to_numpy())
     assert after.iloc[0]["candidate"] == before.iloc[0]["candidate"]
     # A name already in ranking.csv is refused with the file named (not a TOML error).
     again = tmp_path / "again.toml"
@@ -147,15 +153,52 @@ def test_simulate_reproduces_the_held_out_metrics_of_the_run(tmp_path, capsys):
     assert f"heldout_sine: RMSE {rmse}" in printed and "Note:" not in printed
 
 
-def test_a_ranking_that_prefers_another_candidate_says_so(tmp_path):
-    # The model written to model.json is the cross-validated fit; when the ranking puts another
-    # candidate first the run must say so (never two silent answers).
-    raw = {"data": {"files": [str(ROOT / "data_demo" / "ship" / "*.csv")], "states": ["heading", "yaw_rate"],
-                    "inputs": ["rudder"], "held_out": ["heldout_sine"]},
-           "derivatives": {"method": "savitzky_golay", "window": 15, "order": 3},
-           "terms": {"degree": 3, "variables": ["yaw_rate", "rudder"], "input_degree": 1},
-           "selection": {"threshold": 0.5},  # far too coarse: drops the damping terms
-           "bootstrap": {"members": 0}, "ranking": {"sr3": False}, "output": {"figures": False}}
+COARSE_SHIP = {"data": {"files": [str(ROOT / "data_demo" / "ship" / "*.csv")], "states": ["heading", "yaw_rate"],
+                        "inputs": ["rudder"], "held_out": ["heldout_sine"]},
+               "derivatives": {"method": "savitzky_golay", "window": 15, "order": 3},
+               "terms": {"degree": 3, "variables": ["yaw_rate", "rudder"], "input_degree": 1},
+               "selection": {"threshold": 0.5},  # far too coarse: drops the damping terms
+               "bootstrap": {"members": 0}, "ranking": {"sr3": False}, "refine": {"enabled": False},
+               "output": {"figures": False}}
+
+
+def written_structure(result):
+    return frozenset((s, term_key(t)) for s, kept in result.model.equations() for t, _, _ in kept)
+
+
+def test_one_answer_the_recommended_candidate_is_the_model_written(tmp_path, capsys):
+    # The coarse threshold's fit is not the best structure; the ranking recommends another
+    # and that one is the model: printed, in model.json and in the exports (one answer).
+    out = tmp_path / "coarse"
+    config = tmp_path / "coarse.toml"
+    config.write_text(to_toml(validate(COARSE_SHIP, str(config))))
+    assert main(["run", str(config), "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    table = pd.read_csv(out / "ranking.csv", keep_default_na=False, na_values=[""])
+    best = table.iloc[0]
+    assert best["candidate"] != "model" and bool(best["recommended"])
+    assert f"Recommended: {best['candidate']!r}" in printed
+    written = json.loads((out / "model.json").read_text())
+    assert written["choice"]["candidate"] == best["candidate"]
+    n_written = sum(len(e["terms"]) for e in written["equations"])
+    assert n_written == best["n_terms"]
+    result = discover.run(COARSE_SHIP)
+    candidate = {c.name: c for c in result.candidates}[best["candidate"]]
+    assert written_structure(result) == candidate.structure(result.model.state_names)
+    assert not any("model.json holds" in w for w in result.warnings)
+
+
+def test_a_forced_choice_is_written_and_said(tmp_path):
+    # [ranking].choose = "ensemble" keeps the identified (here cross-validated) fit; the run says so.
+    raw = {**COARSE_SHIP, "ranking": {"sr3": False, "choose": "ensemble"}}
     result = discover.run(raw)
+    assert result.model.info["choice"]["candidate"] == "model"
     assert result.ranking.table.iloc[0]["candidate"] != "model"
-    assert any("not the identified model written to model.json" in w for w in result.warnings)
+    assert any("model.json holds 'model', as [ranking].choose = 'ensemble' asks" in w for w in result.warnings)
+
+
+def test_choose_names_what_it_accepts():
+    raw = {"data": {"files": ["x.csv"], "states": ["heading", "yaw_rate"], "inputs": ["rudder"]},
+           "ranking": {"choose": "best"}}
+    with pytest.raises(discover.ConfigError, match=r"\[ranking\].choose = 'best' is none of 'recommended'"):
+        validate(raw, "cfg.toml")
