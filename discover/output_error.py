@@ -13,6 +13,10 @@ covariance accounts for that, where σ²(JᵀJ)⁻¹ alone would be far too narr
 interval is for the coefficient *given the structure*; it does not include the
 uncertainty of choosing the structure (the inclusion probabilities speak to that).
 
+Terms within WALD_Z standard errors of zero are then dropped one at a time and the rest
+refitted (backward elimination by the Wald test; Draper & Smith, Applied Regression
+Analysis, 3rd ed. 1998, §15.2, with HAC standard errors in place of OLS ones).
+
 The refined coefficients replace the derivative fit only when the refinement
 converged and its free run stayed bounded; otherwise the derivative fit is kept and
 the run's warnings say why.
@@ -25,6 +29,12 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from .model import Model
+
+#: Two-sided 95 % normal quantile: the Wald test's level for dropping a term (common practice).
+WALD_Z = 1.96
+
+#: At most this many terms are dropped by the Wald test (each costs one more refinement).
+MAX_WALD_ROUNDS = 3
 
 
 @dataclass(frozen=True)
@@ -73,23 +83,44 @@ def refine_model(model, training, smoothed, refine_settings, simulation, diverge
 
     if not np.any(model.coef):
         return OutputFit(model, model.coef, None, False, "The model has no terms; nothing to refine.")
-    structure = structure_from_model(model)
     runs = [MeasuredRun(run.t, run.x, run.u) for run in training.runs]
-    result = refine(structure, runs, state_guess=[run.x for run in smoothed.full],
-                    interpolation=simulation.interpolation_for(training.runs[0].u),
-                    max_nfev=refine_settings.max_evaluations, time_limit=refine_settings.time_limit,
-                    divergence_factor=divergence_factor)
+    options = dict(state_guess=[run.x for run in smoothed.full],
+                   interpolation=simulation.interpolation_for(training.runs[0].u),
+                   max_nfev=refine_settings.max_evaluations, time_limit=refine_settings.time_limit,
+                   divergence_factor=divergence_factor)
+    result = refine(structure_from_model(model), runs, **options)
     if not result.converged:
         return OutputFit(model, model.coef, result, False,
                          f"The output-error refinement did not converge ({result.message.strip() or 'no reason given'}); "
                          "model.json keeps the derivative-fit coefficients.")
+    # Backward elimination by the Wald test on the HAC standard errors: a term whose
+    # refined coefficient is within WALD_Z standard errors of zero is dropped (the least
+    # significant first) and the rest refitted. Typical of such terms: one that only
+    # compensated the derivative fit's smoothing bias.
+    current, dropped = model, []
+    for _ in range(MAX_WALD_ROUNDS):
+        weakest = _least_significant(result, current)
+        if weakest is None:
+            break
+        j, i = weakest
+        coef = np.array(current.coef)
+        for k, state in enumerate(current.state_names):
+            for m in np.flatnonzero(coef[:, k]):
+                coef[m, k] = result.coefficients[state][current.terms[m]]
+        coef[j, i] = 0.0
+        reduced = replace(current, coef=coef)
+        again = refine(structure_from_model(reduced), runs, **options)
+        if not again.converged:
+            break
+        dropped.append(f"{current.terms[j]} in d{current.state_names[i]}/dt")
+        current, result = reduced, again
     z = float(norm.ppf(0.5 + refine_settings.level / 2))
-    coef = model.coef.copy()
+    coef = np.where(current.coef != 0, model.coef, 0.0)
     stats = {name: values.copy() for name, values in model.term_stats.items()}
     for name in ("derivative_fit", "standard_error", "interval_low", "interval_high"):
         stats[name] = np.full(coef.shape, np.nan)
     for i, state in enumerate(model.state_names):
-        for j in np.flatnonzero(model.coef[:, i]):
+        for j in np.flatnonzero(current.coef[:, i]):
             term = model.terms[j]
             value = result.coefficients[state][term]
             se = result.standard_errors_hac[state].get(term, np.nan)
@@ -97,7 +128,7 @@ def refine_model(model, training, smoothed, refine_settings, simulation, diverge
             stats["derivative_fit"][j, i] = model.coef[j, i]
             stats["standard_error"][j, i] = se
             stats["interval_low"][j, i], stats["interval_high"][j, i] = value - z * se, value + z * se
-    not_determined = [coefficient_name(s, t) for s, t in _undetermined(result, model)]
+    not_determined = [coefficient_name(s, t) for s, t in _undetermined(result, current)]
     info = dict(model.info)
     info["refinement"] = {
         "method": "output error, multiple shooting",
@@ -107,14 +138,32 @@ def refine_model(model, training, smoothed, refine_settings, simulation, diverge
         "interval_level": float(refine_settings.level),
         "interval_meaning": (f"coefficient ± {z:.3f} standard errors (Newey-West covariance of the output "
                              "residuals): a confidence interval given the structure"),
+        "dropped_by_wald_test": dropped,
         "not_identifiable": list(result.not_identifiable),
     }
-    note = None
+    notes = []
+    if dropped:
+        notes.append(f"The output-error fit dropped {', '.join(dropped)}: within {WALD_Z:g} standard errors of zero "
+                     "(Wald test on the Newey-West standard errors).")
     if not_determined:
-        note = ("The output-error fit does not determine " + ", ".join(not_determined)
-                + "; their intervals are left empty (see the report).")
+        notes.append("The output-error fit does not determine " + ", ".join(not_determined)
+                     + "; their intervals are left empty (see the report).")
     refined = replace(model, coef=coef, term_stats=stats, info=info)
-    return OutputFit(refined, model.coef, result, True, note)
+    return OutputFit(refined, model.coef, result, True, " ".join(notes) or None)
+
+
+def _least_significant(result, model):
+    """(term row, state column) of the free term with the smallest |coefficient| / SE below WALD_Z, else None."""
+    worst, where = WALD_Z, None
+    for i, state in enumerate(model.state_names):
+        if np.count_nonzero(model.coef[:, i]) <= 1:
+            continue  # an equation keeps at least one term
+        for j in np.flatnonzero(model.coef[:, i]):
+            term = model.terms[j]
+            se = result.standard_errors_hac[state].get(term, np.nan)
+            if np.isfinite(se) and se > 0 and abs(result.coefficients[state][term]) / se < worst:
+                worst, where = abs(result.coefficients[state][term]) / se, (j, i)
+    return where
 
 
 def _undetermined(result, model):
