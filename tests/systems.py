@@ -94,3 +94,33 @@ def truth_map(truth):
     from discover.terms import term_key
 
     return {state: {term_key(expr): c for expr, c in terms.items()} for state, terms in truth.items()}
+
+
+# A lightly damped hardening (Duffing-type) oscillator of our own, force input:
+# dx/dt = v, dv/dt = -4 x - x**3 - 0.1 v + u (a mass-spring-damper with a cubic spring;
+# common practice). The damping is small: its share of dv/dt is about 2 %.
+OSCILLATOR_TRUTH = {"x": {"v": 1.0}, "v": {"x": -4.0, "x**3": -1.0, "v": -0.1, "u": 1.0}}
+
+
+def oscillator_input(k):
+    """A multisine of five tones between 0.1 and 0.8 Hz, its phases and tones drawn per run."""
+    rng = np.random.default_rng(100 + k)
+    f, p = rng.uniform(0.1, 0.8, 5), rng.uniform(0.0, 2 * np.pi, 5)
+    return lambda t: 0.5 * np.sum(np.sin(2 * np.pi * f[:, None] * np.atleast_1d(t)[None] + p[:, None]), axis=0)
+
+
+def oscillator_runs(*, noise, seed, n_runs=4, duration=40.0, dt=0.02, damping=0.1):
+    """Runs of the oscillator (columns t, x, v, u), Gaussian noise of ``noise`` x each state's std."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(0.0, duration, dt)
+    frames = []
+    for k in range(n_runs):
+        u = oscillator_input(k)
+
+        def rhs(s, state, u=u):
+            return [state[1], -4.0 * state[0] - state[0] ** 3 - damping * state[1] + u(s)[0]]
+
+        states = simulate_true(rhs, [0.5 * k, 0.0], t)
+        states = states + noise * states.std(axis=0) * rng.standard_normal(states.shape)
+        frames.append(pd.DataFrame({"t": t, "x": states[:, 0], "v": states[:, 1], "u": u(t)}))
+    return frames
