@@ -91,6 +91,19 @@ def _equations(result, figures):
             "It shows how much the estimate moves between resamples of the data, not a confidence "
             "interval: it leaves out the bias of smoothing and differentiation, so the true value can lie "
             "outside it. Coefficients are in the data's own units."))
+    refined = "derivative_fit" in stats
+    refinement = model.info.get("refinement", {}) if isinstance(model.info.get("refinement"), dict) else {}
+    ci_level = refinement.get("interval_level", level)
+    if refined:
+        dropped = refinement.get("dropped_by_wald_test") or []
+        parts.append(_paragraph(
+            "Coefficients refined by output error: on the chosen terms, the free-run simulation error over the "
+            "training runs was minimised (multiple shooting), which removes the bias smoothing leaves in the "
+            "derivative fit (shown beside it). Confidence interval: "
+            f"{esc(refinement.get('interval_meaning', 'from the Newey-West covariance'))}, at "
+            f"{100 * ci_level:.0f} %. It does not include the uncertainty of choosing the terms; the inclusion "
+            "probabilities speak to that."
+            + (f" Dropped by the Wald test after refinement: {esc(', '.join(dropped))}." if dropped else "")))
     thresholds = model.info.get("threshold", {})
     for state, kept in model.equations():
         parts.append(f"<h3>d({esc(state)})/dt</h3>")
@@ -100,6 +113,9 @@ def _equations(result, figures):
                                     "absent"))
             continue
         header = ["term", "coefficient"]
+        if refined:
+            header += ["derivative fit", f"confidence low ({100 * ci_level:.0f} %)",
+                       f"confidence high ({100 * ci_level:.0f} %)"]
         if has_p:
             header.append("inclusion probability")
         if has_interval:
@@ -107,6 +123,8 @@ def _equations(result, figures):
         rows = []
         for expr, coefficient, values in kept:
             row = [pretty_term(expr), _number(coefficient, 6)]
+            if refined:
+                row += [_number(values.get(k), 6) for k in ("derivative_fit", "interval_low", "interval_high")]
             if has_p:
                 row.append(_number(values.get("inclusion_probability"), 3))
             if has_interval:

@@ -1,27 +1,22 @@
 """Rank candidate model structures on equal footing.
 
-Model selection for dynamical systems by sparse regression and information criteria
-(Mangan, Kutz, Brunton & Proctor 2017, Proc. R. Soc. A 473): collect candidate term
-sets (the threshold path of each library, the structures the user writes down, a
-second sparse method), fit each by least squares on the same training rows, score
-each on the same held-out runs by free-run simulation, and rank them by AICc.
+Model selection for dynamical systems by sparse regression and simulation (Mangan,
+Kutz, Brunton & Proctor 2017, Proc. R. Soc. A 473): collect candidate term sets (the
+threshold path of each library, the structures the user writes down, a second sparse
+method, the ensemble's inclusion levels), simulate each on data not used to fit it
+(:mod:`discover.choice`) and rank them.
 
-Information criteria, for n residuals with residual sum of squares RSS and k fitted
-coefficients, with the Gaussian log-likelihood ln L = −n/2 · (ln(2π·RSS/n) + 1):
+The criterion: the free-run residuals of every state, divided by that state's
+standard deviation, give RSS over n samples. Free-run residuals are strongly
+autocorrelated, so the likelihood counts the effective number of independent samples
+n_eff (:func:`effective_samples`) rather than n: deviance = n_eff · ln(RSS/n)
+(−2 ln L up to a constant shared by all candidates). AIC, AICc and BIC add their usual
+penalties on that n_eff (Akaike 1974; Hurvich & Tsai 1989; Schwarz 1978). Δ is taken
+against the best candidate; weights are exp(−Δ/2) / Σ exp(−Δ/2). The recommendation and
+its parsimony rule: :func:`order_table`.
 
-* AIC  = −2 ln L + 2k                          (Akaike 1974)
-* AICc = AIC + 2k(k + 1) / (n − k − 1)         (Hurvich & Tsai 1989)
-* BIC  = −2 ln L + k ln n                      (Schwarz 1978)
-
-These are the definitions statsmodels' OLS results use (variance not counted in k),
-so our one-step criteria equal ``OLS(...).fit().aic`` on the same regression.
-Residuals of different states are made comparable by dividing each state's
-residuals by the standard deviation of its measured signal.
-
-ΔAICc is taken against the best candidate; Akaike weights are
-exp(−Δ/2) / Σ exp(−Δ/2). Burnham & Anderson's rule of thumb (Model Selection and
-Multimodel Inference, 2002), used by Mangan et al.: Δ ≤ 2 substantial support,
-Δ > 10 essentially none.
+:func:`information_criteria` keeps statsmodels' OLS definitions (variance not counted
+in k) for one-step (derivative) residuals, where samples are close to independent.
 """
 
 from __future__ import annotations

@@ -75,7 +75,8 @@ def test_cli_writes_output_folder_and_refuses_to_overwrite(tmp_path, capsys):
     for equation in document["equations"]:
         for term in equation["terms"]:
             assert 0.5 <= term["inclusion_probability"] <= 1.0
-            assert term["coefficient_low"] <= term["coefficient"] <= term["coefficient_high"]
+            assert term["coefficient_low"] <= term["coefficient_high"]  # the member spread
+            assert term["interval_low"] < term["coefficient"] < term["interval_high"]  # confidence interval
 
     # Without --force an existing folder is kept as it is (exit status 6, one line).
     assert main(["run", str(ROOT / "configs" / "ship.toml"), "--out", str(out)]) == 6
@@ -86,6 +87,22 @@ def test_cli_writes_output_folder_and_refuses_to_overwrite(tmp_path, capsys):
     assert main(["run", str(ROOT / "configs" / "ship.toml"), "--out", str(out), "--force"]) == 0
     assert (out / "model.json").read_bytes() == first
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")], "no staging folder left"
+
+
+def test_printed_recommendation_is_the_model_written(demo, tmp_path):
+    # One answer: the summary's "Recommended" candidate is the model (less any term the
+    # Wald test dropped after refinement, which the model file lists).
+    from discover.report import summary
+
+    result, _ = demo
+    name = result.ranking.table.iloc[0]["candidate"]
+    assert f"Recommended: {name!r}" in summary(result)
+    assert result.model.info["choice"]["candidate"] == name
+    candidate = {c.name: c for c in result.candidates}[name]
+    dropped = {tuple(reversed(d.split(" in d")[:2])) for d in result.model.info["refinement"]["dropped_by_wald_test"]}
+    dropped = {(state.removesuffix("/dt"), term_key(term)) for state, term in dropped}
+    written = {(s, term_key(t)) for s, kept in result.model.equations() for t, _, _ in kept}
+    assert written == set(candidate.structure(result.model.state_names)) - dropped
 
 
 def test_saved_model_reproduces_the_in_memory_model(demo, tmp_path):
