@@ -13,8 +13,8 @@ covariance accounts for that, where σ²(JᵀJ)⁻¹ alone would be far too narr
 interval is for the coefficient *given the structure*; it does not include the
 uncertainty of choosing the structure (the inclusion probabilities speak to that).
 
-Terms within WALD_Z standard errors of zero are then dropped one at a time and the rest
-refitted (backward elimination by the Wald test; Draper & Smith, Applied Regression
+Terms within WALD_Z standard errors of zero are then dropped, the least significant
+of each equation per round, and the rest refitted (backward elimination by the Wald test; Draper & Smith, Applied Regression
 Analysis, 3rd ed. 1998, §15.2, with HAC standard errors in place of OLS ones).
 
 The refined coefficients replace the derivative fit only when the refinement
@@ -33,8 +33,8 @@ from .model import Model
 #: Two-sided 95 % normal quantile: the Wald test's level for dropping a term (common practice).
 WALD_Z = 1.96
 
-#: At most this many terms are dropped by the Wald test (each costs one more refinement).
-MAX_WALD_ROUNDS = 3
+#: At most this many rounds of the Wald test (each costs one more refinement, warm-started).
+MAX_WALD_ROUNDS = 6
 
 
 @dataclass(frozen=True)
@@ -100,19 +100,19 @@ def refine_model(model, training, smoothed, refine_settings, simulation, diverge
     current, dropped = model, []
     for _ in range(MAX_WALD_ROUNDS):
         weakest = _least_significant(result, current)
-        if weakest is None:
+        if not weakest:
             break
-        j, i = weakest
         coef = np.array(current.coef)
         for k, state in enumerate(current.state_names):
             for m in np.flatnonzero(coef[:, k]):
                 coef[m, k] = result.coefficients[state][current.terms[m]]
-        coef[j, i] = 0.0
+        for j, i in weakest:
+            coef[j, i] = 0.0
         reduced = replace(current, coef=coef)
         again = refine(structure_from_model(reduced), runs, **options)
         if not again.converged:
             break
-        dropped.append(f"{current.terms[j]} in d{current.state_names[i]}/dt")
+        dropped += [f"{current.terms[j]} in d{current.state_names[i]}/dt" for j, i in weakest]
         current, result = reduced, again
     z = float(norm.ppf(0.5 + refine_settings.level / 2))
     coef = np.where(current.coef != 0, model.coef, 0.0)
@@ -153,17 +153,21 @@ def refine_model(model, training, smoothed, refine_settings, simulation, diverge
 
 
 def _least_significant(result, model):
-    """(term row, state column) of the free term with the smallest |coefficient| / SE below WALD_Z, else None."""
-    worst, where = WALD_Z, None
+    """Per equation, (term row, state column) of the free term with the smallest |coefficient| / SE
+    below WALD_Z; equations with none (or a single term, which is kept) are left out."""
+    found = []
     for i, state in enumerate(model.state_names):
         if np.count_nonzero(model.coef[:, i]) <= 1:
             continue  # an equation keeps at least one term
+        worst, where = WALD_Z, None
         for j in np.flatnonzero(model.coef[:, i]):
             term = model.terms[j]
             se = result.standard_errors_hac[state].get(term, np.nan)
             if np.isfinite(se) and se > 0 and abs(result.coefficients[state][term]) / se < worst:
                 worst, where = abs(result.coefficients[state][term]) / se, (j, i)
-    return where
+        if where is not None:
+            found.append(where)
+    return found
 
 
 def _undetermined(result, model):

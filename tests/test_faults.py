@@ -180,8 +180,12 @@ def test_threshold_that_removes_every_term_is_reported_not_fatal(tmp_path):
     config["selection"] = {"threshold": 50.0}
     config["bootstrap"] = {"members": 10}
     config["ranking"] = {"enabled": True, "sr3": False}
+    # Left to the ranking, a candidate of the threshold path with terms is recommended instead.
+    assert discover.run(config).model.coef.any()
+    # Forced to write the selection's own (empty) model, the run reports it and finishes.
+    config["ranking"]["choose"] = "ensemble"
     result = discover.run(config)
-    assert not result.model.coef.any()
+    assert not result.single_model.coef.any() and not result.model.coef.any()
     assert any("fell below the threshold" in w for w in result.warnings)
     assert "d(x)/dt = 0" in report.summary(result)
     out = discover.write_outputs(result, tmp_path / "out")

@@ -150,12 +150,17 @@ def test_ship_report_tables_are_real_tables_with_the_results(ship_report):
     for item in result.validation:
         for state, fit in zip(result.model.state_names, item.metrics["fit_percent"]):
             assert [item.run, state, f"{fit:.1f} %"] in [row[:3] for row in fits[1:]]
-    # Each kept term with its coefficient, inclusion probability and interval beside it.
+    # Each kept term: refined coefficient, derivative fit and confidence interval (refinement is on
+    # by default), then inclusion probability and member spread.
     assert {"inclusion_probability", "coefficient_low", "coefficient_high"} <= set(result.model.term_stats)
+    assert {"derivative_fit", "interval_low", "interval_high"} <= set(result.model.term_stats)
     for state, kept in result.model.equations():
         rows = page.table(f"terms of d({state})/dt")
-        assert rows[0][:3] == ["term", "coefficient", "inclusion probability"]
+        assert rows[0][:3] == ["term", "coefficient", "derivative fit"]
+        assert "inclusion probability" in rows[0]
         assert rows[1:] == [[discover.report.pretty_term(expr), f"{coefficient:.6g}",
+                             f"{values['derivative_fit']:.6g}", f"{values['interval_low']:.6g}",
+                             f"{values['interval_high']:.6g}",
                              f"{values['inclusion_probability']:.3g}", f"{values['coefficient_low']:.4g}",
                              f"{values['coefficient_high']:.4g}"] for expr, coefficient, values in kept]
     # Data files with their SHA-256 (hashlib's, via the provenance record).
