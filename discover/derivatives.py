@@ -66,16 +66,16 @@ def _check_finite_difference_options(order):
 
 
 def _check_savitzky_golay_options(window, order):
-    if not _is_int(window) or window < 3 or window % 2 == 0:
+    if window is not None and (not _is_int(window) or window < 3 or window % 2 == 0):
         raise ConfigError(
-            f"[derivatives].window must be an odd int >= 3. Got {window!r}."
+            f"[derivatives].window must be an odd int >= 3, or unset (chosen from the data). Got {window!r}."
         )
     if not _is_int(order) or order < 1:
         raise ConfigError(
             "[derivatives].order must be an int >= 1 (the polynomial order of "
             f"'savitzky_golay'). Got {order!r}."
         )
-    if window <= order:
+    if window is not None and window <= order:
         raise ConfigError(
             "[derivatives].window must be greater than [derivatives].order "
             f"for 'savitzky_golay'. Got window = {window}, order = {order}."
@@ -193,7 +193,7 @@ def finite_difference(t, x, *, order=2):
     return x, np.asarray(x_dot, dtype=np.float64)
 
 
-def savitzky_golay(t, x, *, window=11, order=3):
+def savitzky_golay(t, x, *, window=None, order=3):
     """Savitzky–Golay filter (Savitzky & Golay 1964): local least-squares polynomials.
 
     Each sample is replaced by the value and slope, at its centre, of the
@@ -208,8 +208,10 @@ def savitzky_golay(t, x, *, window=11, order=3):
         Strictly increasing, uniformly sampled times.
     x : ndarray of shape (n_samples, n_states)
         States, one row per time.
-    window : int, default=11
-        Number of samples in each fit; odd, >= 3 and > ``order``.
+    window : int or None, default=None
+        Number of samples in each fit; odd, >= 3 and > ``order``. None: chosen from
+        this run by :func:`discover.window_choice.automatic_window` (a pipeline run
+        chooses one window for all its runs before smoothing them).
     order : int, default=3
         Degree of the fitted polynomial, >= 1.
 
@@ -230,6 +232,10 @@ def savitzky_golay(t, x, *, window=11, order=3):
     """
     _check_savitzky_golay_options(window, order)
     x = np.asarray(x, dtype=np.float64)
+    if window is None:
+        from .window_choice import automatic_window
+
+        window, _ = automatic_window([x], order)
     _require_samples(len(t), window, f"savitzky_golay with window = {window}")
     step = _uniform_step(
         t,
@@ -420,9 +426,12 @@ METHODS = {m.name: m for m in (
         stream_half_width=lambda o: o["order"] // 2),
     DerivativeMethod(
         "savitzky_golay", savitzky_golay,
-        (Option("window", "int", 11, minimum=3, odd=True), Option("order", "int", 3, minimum=1)),
-        _check_savitzky_golay_options, trim=lambda o: o["window"] // 2, fewest=lambda o: o["window"],
-        stream_half_width=lambda o: o["window"] // 2),
+        (Option("window", "int", None, minimum=3, odd=True, nullable=True), Option("order", "int", 3, minimum=1)),
+        # An unset window is resolved from the data before any run is smoothed
+        # (window_choice.resolve_window); until then the smallest window stands in.
+        _check_savitzky_golay_options, trim=lambda o: (o["window"] or o["order"] + 2) // 2,
+        fewest=lambda o: o["window"] or o["order"] + 2,
+        stream_half_width=lambda o: (o["window"] or o["order"] + 2) // 2),
     DerivativeMethod(
         "smoothing_spline", smoothing_spline, (Option("lam", "float", None, minimum=0.0, nullable=True),),
         _check_smoothing_spline_options, trim=lambda o: 3, fewest=lambda o: 5),

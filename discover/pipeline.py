@@ -7,7 +7,7 @@ this module only chains them. :func:`run` is the Python entry point (``discover.
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
@@ -25,6 +25,7 @@ from .selection import Selection, select_terms
 from .simulate import SimulationSettings, simulation_settings
 from .smoothing import SmoothedRuns, resolve_trim, smooth_runs
 from .validation import Diagnostics, diagnose, validate_runs, validation_warnings, with_bands
+from .window_choice import resolve_window, training_states
 
 
 @dataclass(frozen=True)
@@ -145,6 +146,10 @@ def _run(settings, executor, progress):
     clock = _StageClock()
     training, held_out = load_dataset(settings, lazy_training=bool(data.chunk_rows))
     clock.done("data")
+    # A window left to the data is chosen once, before any run is smoothed, and written
+    # into the settings (and so into the effective config): every later step smooths alike.
+    derivatives, window_note = resolve_window(settings.derivatives, lambda: training_states(training, data))
+    settings = replace(settings, derivatives=derivatives)
     library = library_for(settings)
     smoothed = None
     if data.chunk_rows:
@@ -173,6 +178,7 @@ def _run(settings, executor, progress):
     info = {"threshold": {s: float(v) for s, v in zip(training.state_names, selection.thresholds)},
             "threshold_scale": "dimensionless: |coefficient| * rms(term) / rms(derivative)",
             "derivative_method": settings.derivatives.method, "cv_split": selection.split,
+            **({"derivative_window_choice": window_note} if window_note else {}),
             **replay_info(settings, simulation)}
     single = Model(training.state_names, training.input_names, tuple(library.names), selection.coef, info=info)
     clock.done("selection")

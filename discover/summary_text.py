@@ -57,6 +57,8 @@ def summary(result):
     for state, kept in model.equations():
         lines.append("  " + format_equation(state, kept, show_probability=show))
     lines += refinement_lines(model)
+    if model.info.get("derivative_window_choice"):
+        lines.append(model.info["derivative_window_choice"])
     thresholds = model.info.get("threshold", {})
     if thresholds:
         how = f"cross-validated, rule {result.cv.rule!r}" if result.cv is not None else "fixed"

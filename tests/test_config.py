@@ -27,7 +27,8 @@ def test_defaults_fill_every_key():
     for section, keys in SCHEMA.items():
         table = config if section == "" else config[section]
         assert set(keys) <= set(table)
-    assert config["derivatives"]["window"] == 11  # the default method's own option
+    # The default method's own option: unset, the window is chosen from the data.
+    assert config["derivatives"]["method"] == "savitzky_golay" and config["derivatives"]["window"] is None
 
 
 def test_settings_are_frozen():
