@@ -88,7 +88,7 @@ def main(path):
           f"{t_loop:.2f} s, all members in one solve {t_vec:.2f} s, ratio {t_loop / t_vec:.1f}x")
     print(f"  diverged members: {diverged_loop.sum()} (separate) vs {diverged_vec.sum()} (together), "
           f"same members: {bool(np.array_equal(diverged_loop, diverged_vec))}; largest difference "
-          f"of the others: {agree:.1e} of the state's spread (solver tolerance rtol={sim['rtol']:g})")
+          f"of the others: {agree:.1e} of the state's spread (solver tolerance rtol={settings.rtol:g})")
 
 
 if __name__ == "__main__":
