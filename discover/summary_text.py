@@ -62,6 +62,10 @@ def summary(result):
         how = f"cross-validated, rule {result.cv.rule!r}" if result.cv is not None else "fixed"
         lines.append("Threshold (dimensionless, " + how + "): "
                      + ", ".join(f"{s} {v:.3g}" for s, v in thresholds.items()))
+    weak = model.info.get("weak")
+    if model.info.get("target") == "weak" and isinstance(weak, dict):
+        lines.append(f"Regression target: weak form, {weak.get('windows')} test-function windows of half-width "
+                     f"{weak.get('half_width')} samples (p = {weak.get('degree_p')}, stride {weak.get('stride')}).")
     if result.validation:
         lines.append("Held-out runs (free-run simulation with the recorded input):")
         for item in result.validation:
