@@ -52,7 +52,7 @@ class WeakOptions:
         return {"half_width": self.half_width, "degree_p": self.degree_p, "stride": self.stride}
 
 
-def resolve_options(runs, weak_settings, where="config"):
+def resolve_options(runs, weak_settings):
     """The half-width (from the data when ``"auto"``), degree and stride for these runs."""
     half_width = weak_settings.half_width
     if half_width == "auto":
