@@ -56,12 +56,13 @@ def refit_without(candidate, keep):
 def fold_stretches(blocks, labels, trim):
     """(run index, fold, rows of the untrimmed run) for every contiguous stretch of one fold."""
     out = []
+    sizes = blocks.counts if blocks.samples is None else blocks.samples
     for r in np.unique(blocks.runs):
         mine = np.flatnonzero(blocks.runs == r)
         mine = mine[np.argsort(blocks.positions[mine], kind="stable")]
         start = trim
         for b in mine:
-            stop = start + int(blocks.counts[b])
+            stop = start + int(sizes[b])
             if out and out[-1][0] == r and out[-1][1] == labels[b] and out[-1][2][-1] == start - 1:
                 out[-1] = (r, labels[b], np.arange(out[-1][2][0], stop))
             else:

@@ -271,6 +271,8 @@ def _check_relations(where, config):
                             f"(local methods; got {deriv['method']!r})")
         if data["missing"] != "refuse":
             problems.append(f"[data].missing must be 'refuse' (got {data['missing']!r})")
+        if sel["target"] == "weak":
+            problems.append("[selection].target must be 'derivative' (the weak form integrates whole runs in memory)")
         if config["bootstrap"]["resample"] == "rows":
             problems.append("[bootstrap].resample cannot be 'rows'")
         if not data["held_out"] and data["held_out_count"] < 1:

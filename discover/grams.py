@@ -104,11 +104,14 @@ def _concatenate(per_run, n_terms):
 class MemoryBackend:
     """Training runs held in memory (the default)."""
 
+    row_unit = "usable samples"  # what a row of the regression pair is (check_library_size)
+
     def __init__(self, smoothed, executor):
         self.runs = smoothed.trimmed
         self.smoothed = smoothed
         self.executor = executor
         self.lengths = [len(r.t) for r in self.runs]
+        self.n_rows = sum(self.lengths)
         self.correlation = int(np.median([bootstrap.correlation_length(r.x_dot[: stream.CORRELATION_ROWS])
                                           for r in self.runs]))
 
@@ -146,6 +149,7 @@ class ChunkedBackend:
                 raise DataError(f"{path}: {n} samples is too few for [derivatives].method = "
                                 f"{settings.derivatives.method!r} (needs at least {needed}).")
         self.lengths = [n - 2 * trim for n in self.sizes]
+        self.n_rows, self.row_unit = sum(self.lengths), "usable samples"
         self.correlation = int(np.median([
             bootstrap.correlation_length(stream.prefix_derivative(p, self.reading, n))
             for p, n in zip(self.paths, self.sizes)
@@ -187,12 +191,12 @@ def fold_labels(blocks, n_folds, split):
     return blocks.positions * n_folds // per_run, split
 
 
-def check_library_size(library, n_rows, where):
-    """More terms than usable samples cannot be fitted."""
+def check_library_size(library, n_rows, where, unit="usable samples"):
+    """More terms than rows of the regression pair (samples, or weak windows) cannot be fitted."""
     if len(library) >= n_rows:
         raise DataError(
             f"{where}: the library has {len(library)} terms but the training runs give only "
-            f"{n_rows} usable samples. Lower [terms].degree or add data."
+            f"{n_rows} {unit}. Lower [terms].degree or add data."
         )
 
 

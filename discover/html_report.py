@@ -22,6 +22,7 @@ import numpy as np
 from .config import to_toml
 from .html_parts import _STYLE, _figure, _number, _paragraph, _percent, _table, esc, figure_uri  # noqa: F401
 from .provenance import provenance
+from .summary_text import weak_target_text
 from .report import (
     CAUTION,
     file_stems,
@@ -250,7 +251,8 @@ def _cv(result, figures):
         rows.append([state, _number(cv.selected[i], 3), _number(cv.error[t, i], 3), _number(cv.error_se[t, i], 3),
                      str(int(cv.n_terms[t, i]))])
     split = result.model.info.get("cv_split")
-    parts = [
+    parts = [_paragraph(weak_target_text(result.model.info))] if result.model.info.get("target") == "weak" else []
+    parts += [
         _paragraph(f"Rule {cv.rule!r}" + (f", folds by {split}" if split else "")
                    + ": 'one_se' takes the largest threshold whose error is within one standard error of the "
                      "minimum; 'min' the minimum."),

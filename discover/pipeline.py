@@ -17,14 +17,14 @@ from . import choice
 from .candidates import Ranking, collect_candidates, rank_candidates
 from .config import Settings, load_config
 from .data import Dataset, check_excitation, data_warnings, load_dataset
-from .grams import (ChunkedBackend, MemoryBackend, check_collinear_terms, check_library_size, fold_labels,
-                    library_for, make_plan)
+from .grams import ChunkedBackend, check_collinear_terms, check_library_size, fold_labels, library_for, make_plan
 from .model import Model
 from .output_error import OutputFit, refine_model
 from .selection import Selection, select_terms
 from .simulate import SimulationSettings, simulation_settings
 from .smoothing import SmoothedRuns, resolve_trim, smooth_runs
 from .validation import Diagnostics, diagnose, validate_runs, validation_warnings, with_bands
+from .weak_grams import target_info, training_backend
 from .window_choice import resolve_window, training_states
 
 
@@ -157,10 +157,10 @@ def _run(settings, executor, progress):
     else:
         check_excitation(training, where)
         smoothed = smooth_runs(training, settings.derivatives, progress=progress)
-        backend = MemoryBackend(smoothed, executor)
+        backend = training_backend(settings, smoothed, executor)  # [selection].target
     clock.done("derivatives")
     plan = make_plan(backend, settings.selection.cv_folds, settings.bootstrap.block_length)
-    check_library_size(library, sum(backend.lengths), where)
+    check_library_size(library, backend.n_rows, where, backend.row_unit)
     rows = settings.bootstrap.resample == "rows"
     resources.check_memory(resources.estimate(
         library_terms=len(library), n_states=len(data.states), run_lengths=backend.lengths,
@@ -176,9 +176,8 @@ def _run(settings, executor, progress):
     selection = select_terms(settings.selection, gram_blocks.blocks, folds, training.state_names, split=split)
     simulation = resolve_simulation(settings, training)
     info = {"threshold": {s: float(v) for s, v in zip(training.state_names, selection.thresholds)},
-            "threshold_scale": "dimensionless: |coefficient| * rms(term) / rms(derivative)",
-            "derivative_method": settings.derivatives.method, "cv_split": selection.split,
-            **({"derivative_window_choice": window_note} if window_note else {}),
+            **target_info(settings, backend), "derivative_method": settings.derivatives.method,
+            "cv_split": selection.split, **({"derivative_window_choice": window_note} if window_note else {}),
             **replay_info(settings, simulation)}
     single = Model(training.state_names, training.input_names, tuple(library.names), selection.coef, info=info)
     clock.done("selection")

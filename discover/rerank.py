@@ -14,10 +14,11 @@ from .compute import Executor
 from .config import load_config, tomllib, with_hypotheses
 from .data import file_hash, load_dataset
 from .exceptions import ConfigError, DataError, OutputError
-from .grams import ChunkedBackend, MemoryBackend, fold_labels, make_plan
+from .grams import ChunkedBackend, fold_labels, make_plan
 from .model import load_model
 from .pipeline import resolve_simulation
 from .smoothing import resolve_trim, smooth_runs
+from .weak_grams import training_backend
 
 
 def read_hypotheses(path):
@@ -93,7 +94,7 @@ def rank_more(out_dir, hypotheses_path, *, criterion=None, allow_changed_data=Fa
         backend, smoothed = ChunkedBackend(settings, training, resolve_trim(settings.derivatives)), None
     else:
         smoothed = smooth_runs(training, settings.derivatives)
-        backend = MemoryBackend(smoothed, Executor())
+        backend = training_backend(settings, smoothed, Executor())  # the run's [selection].target
     plan = make_plan(backend, settings.selection.cv_folds, settings.bootstrap.block_length)
     candidates = [hypothesis_candidate(settings, h, model, backend, plan) for h in settings.ranking.hypotheses]
     training = backend.thin_training(training)

@@ -16,6 +16,7 @@ from types import MappingProxyType
 
 from .derivatives import METHODS
 from .simulate import SOLVERS as SIMULATION_METHODS
+from .weak import DEFAULT_DEGREE_P, DEFAULT_TAU_HAT
 
 
 @dataclass(frozen=True)
@@ -80,6 +81,18 @@ SCHEMA = {
         "cv_folds": Key("int", 5, minimum=2, maximum=50),
         "cv_split": Key("str", "auto", choices=("auto", "runs", "blocks")),
         "cv_rule": Key("str", "one_se", choices=("one_se", "min")),
+        # The regression pair: pointwise derivatives, or the weak (integral) form of [weak].
+        "target": Key("str", "derivative", choices=("derivative", "weak")),
+    },
+    # Test functions of [selection].target = "weak" (discover.weak, Messenger & Bortz 2021).
+    "weak": {
+        # Samples on each side of a window's centre; "auto": from the data's corner frequency.
+        "half_width": Key("int", "auto", minimum=2, also=("auto",)),
+        "degree_p": Key("int", DEFAULT_DEGREE_P, minimum=1, maximum=64),
+        # Samples between window starts; unset: half_width // 2.
+        "stride": Key("int", None, minimum=1, nullable=True),
+        # Used by half_width = "auto": standard deviations of the test function's spectrum at the corner.
+        "tau_hat": Key("float", DEFAULT_TAU_HAT, minimum=0.1, maximum=20.0),
     },
     "bootstrap": {
         "members": Key("int", 100, minimum=0, maximum=100000),  # 0 turns the ensemble off
@@ -235,6 +248,7 @@ class Settings:
     derivatives: DerivativeSettings
     terms: object
     selection: object
+    weak: object
     bootstrap: object
     simulation: object
     ranking: object

@@ -174,6 +174,9 @@ class BlockGrams:
     runs: np.ndarray
     n_terms: int
     positions: np.ndarray | None = None  # index of each block within its run
+    # Samples of its run each block stands for, where rows are not samples (weak windows);
+    # None: counts. Ranking maps CV folds back onto the runs with it.
+    samples: np.ndarray | None = None
 
     def total(self, weights=None):
         """Weighted sum of block Grams, summed in block order (deterministic)."""

@@ -49,6 +49,14 @@ def format_equation(state, kept, *, show_probability=False):
     return f"d({state})/dt = " + "".join(parts)
 
 
+def weak_target_text(info):
+    """One sentence on the weak regression target of a model's ``info``."""
+    weak = info.get("weak") if isinstance(info.get("weak"), dict) else {}
+    return (f"Regression target: the weak (integral) form, {weak.get('windows')} test-function windows of "
+            f"half-width {weak.get('half_width')} samples (degree p = {weak.get('degree_p')}, stride "
+            f"{weak.get('stride')}); thresholds are on the scale of the weak target.")
+
+
 def summary(result):
     """The text printed at the end of a run (also written as summary.txt)."""
     model = result.model
@@ -64,6 +72,8 @@ def summary(result):
         how = f"cross-validated, rule {result.cv.rule!r}" if result.cv is not None else "fixed"
         lines.append("Threshold (dimensionless, " + how + "): "
                      + ", ".join(f"{s} {v:.3g}" for s, v in thresholds.items()))
+    if model.info.get("target") == "weak":
+        lines.append(weak_target_text(model.info))
     if result.validation:
         lines.append("Held-out runs (free-run simulation with the recorded input):")
         for item in result.validation:

@@ -124,3 +124,34 @@ def oscillator_runs(*, noise, seed, n_runs=4, duration=40.0, dt=0.02, damping=0.
         states = states + noise * states.std(axis=0) * rng.standard_normal(states.shape)
         frames.append(pd.DataFrame({"t": t, "x": states[:, 0], "v": states[:, 1], "u": u(t)}))
     return frames
+
+
+# The forced Van der Pol oscillator (van der Pol 1926, Phil. Mag. 2(11): x'' - mu (1 - x**2) x' + x = 0)
+# with mu = 1, the textbook value (common practice), and a force input u of our own:
+# dx/dt = v, dv/dt = -x + mu v - mu x**2 v + u.
+VDP_MU = 1.0
+VAN_DER_POL_TRUTH = {"x": {"v": 1.0}, "v": {"x": -1.0, "v": VDP_MU, "x**2*v": -VDP_MU, "u": 1.0}}
+
+
+def van_der_pol_input(k):
+    """A multisine of four tones between 0.05 and 0.4 Hz, its phases and tones drawn per run."""
+    rng = np.random.default_rng(200 + k)
+    f, p = rng.uniform(0.05, 0.4, 4), rng.uniform(0.0, 2 * np.pi, 4)
+    return lambda t: 0.5 * np.sum(np.sin(2 * np.pi * f[:, None] * np.atleast_1d(t)[None] + p[:, None]), axis=0)
+
+
+def van_der_pol_runs(*, noise, seed, n_runs=3, duration=40.0, dt=0.02):
+    """Runs of the forced Van der Pol oscillator (columns t, x, v, u), Gaussian noise of ``noise`` x each state's std."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(0.0, duration, dt)
+    frames = []
+    for k in range(n_runs):
+        u = van_der_pol_input(k)
+
+        def rhs(s, state, u=u):
+            return [state[1], VDP_MU * (1.0 - state[0] ** 2) * state[1] - state[0] + u(s)[0]]
+
+        states = simulate_true(rhs, [2.0 - k, 0.0], t)
+        states = states + noise * states.std(axis=0) * rng.standard_normal(states.shape)
+        frames.append(pd.DataFrame({"t": t, "x": states[:, 0], "v": states[:, 1], "u": u(t)}))
+    return frames
