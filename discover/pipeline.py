@@ -12,20 +12,31 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
-from . import bootstrap, compute, resources
-from . import choice
+from . import bootstrap, choice, compute, resources, stream, window_choice
 from .candidates import Ranking, collect_candidates, rank_candidates
 from .config import Settings, load_config
 from .data import Dataset, check_excitation, data_warnings, load_dataset
-from .grams import ChunkedBackend, check_collinear_terms, check_library_size, fold_labels, library_for, make_plan
+from .grams import (
+    ChunkedBackend,
+    check_collinear_terms,
+    check_library_size,
+    fold_labels,
+    library_for,
+    make_plan,
+)
 from .model import Model
 from .output_error import OutputFit, refine_model
 from .selection import Selection, select_terms
 from .simulate import SimulationSettings, simulation_settings
 from .smoothing import SmoothedRuns, resolve_trim, smooth_runs
-from .validation import Diagnostics, diagnose, validate_runs, validation_warnings, with_bands
+from .validation import (
+    Diagnostics,
+    diagnose,
+    validate_runs,
+    validation_warnings,
+    with_bands,
+)
 from .weak_grams import target_info, training_backend
-from .window_choice import resolve_window, training_states
 
 
 @dataclass(frozen=True)
@@ -115,6 +126,20 @@ def replay_info(settings, simulation):
             "simulation": simulation.to_dict()}
 
 
+def training_states(training, data):
+    """The states of every training run for the window choice; runs read in chunks
+    (``[data].chunk_rows``) give their first :data:`window_choice.GCV_ROWS` rows only."""
+    if not data.chunk_rows:
+        return [run.x for run in training.runs]
+    states = []
+    for run in training.runs:
+        chunks = stream.checked_chunks(run.source, time=data.time, states=data.states, inputs=data.inputs,
+                                       rename=data.rename, chunk_rows=window_choice.GCV_ROWS)
+        states.append(next(chunks)[1])
+        chunks.close()
+    return states
+
+
 def run(source, *, progress=False):
     """Run the pipeline from a config (a TOML path, a dict, or loaded :class:`Settings`).
 
@@ -148,7 +173,8 @@ def _run(settings, executor, progress):
     clock.done("data")
     # A window left to the data is chosen once, before any run is smoothed, and written
     # into the settings (and so into the effective config): every later step smooths alike.
-    derivatives, window_note = resolve_window(settings.derivatives, lambda: training_states(training, data))
+    derivatives, window_note = window_choice.resolve_window(settings.derivatives,
+                                                             lambda: training_states(training, data))
     settings = replace(settings, derivatives=derivatives)
     library = library_for(settings)
     smoothed = None

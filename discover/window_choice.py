@@ -88,22 +88,6 @@ def automatic_window(runs_x, order):
     return max(window, _odd(order + 2)), gcv
 
 
-def training_states(training, data):
-    """The states of every training run, at most :data:`GCV_ROWS` rows each; runs read in
-    chunks (``[data].chunk_rows``) contribute their first rows only."""
-    if not data.chunk_rows:
-        return [run.x for run in training.runs]
-    from .stream import checked_chunks
-
-    states = []
-    for run in training.runs:
-        chunks = checked_chunks(run.source, time=data.time, states=data.states, inputs=data.inputs,
-                                rename=data.rename, chunk_rows=GCV_ROWS)
-        states.append(next(chunks)[1])
-        chunks.close()
-    return states
-
-
 def resolve_window(derivatives, states):
     """``[derivatives]`` with the window filled in where it was left to the data.
 

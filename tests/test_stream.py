@@ -11,6 +11,7 @@ from discover.config import load_config
 from discover.data import load_dataset
 from discover.derivatives import METHODS
 from discover.smoothing import resolve_trim, smooth_runs
+from discover.window_choice import resolve_window
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -38,10 +39,12 @@ def test_streamed_derivatives_equal_whole_run_derivatives(chunk_rows, method, op
     # Every method whose record says it streams: reference is the same method on the whole
     # run in memory (scipy savgol_filter, numpy gradient).
     settings = load_config(ship(None, method=method, **options))
-    trim = resolve_trim(settings.derivatives)
-    reading = stream.ChunkReading(settings.data, settings.derivatives, trim, chunk_rows)
     training, _ = load_dataset(settings)
-    for run, whole in zip(training.runs, smooth_runs(training, settings.derivatives).trimmed):
+    # A window left to the data is resolved before any smoothing, as the pipeline does.
+    derivatives, _ = resolve_window(settings.derivatives, lambda: [run.x for run in training.runs])
+    trim = resolve_trim(derivatives)
+    reading = stream.ChunkReading(settings.data, derivatives, trim, chunk_rows)
+    for run, whole in zip(training.runs, smooth_runs(training, derivatives).trimmed):
         pieces = list(stream.trimmed_pieces(Path(run.source), reading, len(run.t)))
         for streamed, expected in zip((np.concatenate([p[i] for p in pieces]) for i in range(5)),
                                       (whole.t, whole.x, whole.x_dot, whole.u, whole.x_raw)):
