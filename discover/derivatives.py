@@ -196,11 +196,9 @@ def finite_difference(t, x, *, order=2):
 def savitzky_golay(t, x, *, window=None, order=3):
     """Savitzky–Golay filter (Savitzky & Golay 1964): local least-squares polynomials.
 
-    Each sample is replaced by the value and slope, at its centre, of the
-    polynomial of degree ``order`` fitted by least squares to the ``window``
-    samples around it (:func:`scipy.signal.savgol_filter`, ``mode="interp"``:
-    the first and last ``window // 2`` samples take the polynomial fitted to
-    the first and last full window).
+    Each sample takes the value and slope of the degree-``order`` least-squares
+    polynomial of the ``window`` samples around it (:func:`scipy.signal.savgol_filter`,
+    ``mode="interp"``: the ends take the fit of the first and last full window).
 
     Parameters
     ----------
@@ -209,9 +207,8 @@ def savitzky_golay(t, x, *, window=None, order=3):
     x : ndarray of shape (n_samples, n_states)
         States, one row per time.
     window : int or None, default=None
-        Number of samples in each fit; odd, >= 3 and > ``order``. None: chosen from
-        this run by :func:`discover.window_choice.automatic_window` (a pipeline run
-        chooses one window for all its runs before smoothing them).
+        Samples in each fit; odd, >= 3 and > ``order``. None: chosen from this run by
+        GCV (:mod:`discover.window_choice`; a pipeline run chooses one for all runs).
     order : int, default=3
         Degree of the fitted polynomial, >= 1.
 
@@ -427,8 +424,7 @@ METHODS = {m.name: m for m in (
     DerivativeMethod(
         "savitzky_golay", savitzky_golay,
         (Option("window", "int", None, minimum=3, odd=True, nullable=True), Option("order", "int", 3, minimum=1)),
-        # An unset window is resolved from the data before any run is smoothed
-        # (window_choice.resolve_window); until then the smallest window stands in.
+        # An unset window is resolved from the data first; until then the smallest stands in.
         _check_savitzky_golay_options, trim=lambda o: (o["window"] or o["order"] + 2) // 2,
         fewest=lambda o: o["window"] or o["order"] + 2,
         stream_half_width=lambda o: (o["window"] or o["order"] + 2) // 2),
