@@ -9,7 +9,8 @@ The noise levels come from the data, not from settings:
 * process noise of each state: the variance per unit time of the one-step residuals
   x̃(t_{k+1}) − Φ_k(x̃(t_k)) along the training runs, where x̃ holds the smoothed measured
   states and the fitted free run of the hidden ones, and Φ_k is one RK4 step of the model
-  over the interval (Kalman filter tuning from prediction residuals; common practice).
+  over the interval (Kalman filter tuning from prediction residuals; common practice);
+  a hidden state at least the measured states' level relative to each state's spread.
 
 A training run starts from its fitted initial state, a held-out run from the smoothed
 measured states and the hidden states' mean over the training runs (prior spread: their
@@ -121,16 +122,49 @@ def noise_levels(model, smoothed, refinement, n_measured, interpolation):
     spread = np.nanstd(np.vstack(refinement.simulated_states), axis=0)
     length = max(seconds, 1e-300)
     floor = PROCESS_FLOOR * np.where(spread > 0, spread, 1.0) / np.sqrt(length / max(len(smoothed.full), 1))
-    process = np.sqrt(np.sum(residuals ** 2, axis=0) / length) if len(residuals) else floor
+    process = np.sqrt(np.sum(residuals ** 2, axis=0) / length) if len(residuals) else floor.copy()
+    # A hidden state's trajectory is the model's own free run, so its one-step residuals only
+    # see what its equation reads from the measured states: it gets at least the measured
+    # states' process noise relative to their spread.
+    if 0 < n_measured < len(process):
+        relative = float(np.median(process[:n_measured] / np.where(spread[:n_measured] > 0, spread[:n_measured], 1.0)))
+        process[n_measured:] = np.maximum(process[n_measured:], relative * spread[n_measured:])
     return measurement, np.maximum(process, floor)
+
+
+def fast_functions(model, structure):
+    """(f, g): the model's right-hand side and outputs on rows, through the refinement's evaluator.
+
+    The filter calls them for one sigma point at a time, tens of thousands of times per
+    run; the monomial evaluator of :mod:`discover.integrator` is the cheaper path there.
+    """
+    from .integrator import _Dynamics
+
+    dynamics = _Dynamics(structure)
+    xi = dynamics.xi(np.array([structure.equations[s][t] for s, t in dynamics.coef_pairs]))
+
+    def f(x, u):
+        return dynamics.rhs(x, u, xi, None)[0]
+
+    def g(x, u):
+        return dynamics.evaluate_outputs(np.concatenate([x, u], axis=1))
+
+    return f, g
 
 
 def estimate_runs(model, fit, smoothed_train, smoothed_held, training, held_out, simulation, interpolation,
                   n_measured, *, estimate=True):
-    """Every run's estimate (when ``estimate``) and the held-out validation: an :class:`Estimates`."""
+    """Every run's estimate (when ``estimate``) and the held-out validation: an :class:`Estimates`.
+
+    The filter's RK4 takes the substeps per sample interval that the output-error fit
+    resolved for the same model (stable steps along the data).
+    """
     from .estimation import estimate_states
+    from .refine_types import structure_from_model
 
     refinement = fit.refinement
+    f, g = fast_functions(model, structure_from_model(model, hidden=model.hidden_states,
+                                                      outputs=model.output_expressions))
     measurement, process = noise_levels(model, smoothed_train, refinement, n_measured, interpolation)
     stacked = np.vstack(refinement.simulated_states)
     typical, spread = np.nanmean(stacked, axis=0), np.nanstd(stacked, axis=0)
@@ -151,10 +185,11 @@ def estimate_runs(model, fit, smoothed_train, smoothed_held, training, held_out,
         result, message = None, ""
         if estimate:
             try:
-                result = estimate_states(model.rhs, model.outputs, run.t, run.x, run.u if model.input_names else None,
+                max_step = float(np.median(np.diff(run.t))) / refinement.substeps * (1 + 1e-9)
+                result = estimate_states(f, g, run.t, run.x, run.u if model.input_names else None,
                                          state_names=model.state_names, x0=x0, x0_cov=np.diag(cov_spread ** 2),
                                          measurement_std=measurement, process_std=process,
-                                         interpolation=interpolation)
+                                         interpolation=interpolation, max_step=max_step)
             except DataError as err:
                 message = f"state estimation of run {run.name!r} failed: {err}"
                 notes.append(message)

@@ -97,3 +97,35 @@ def run_hidden(settings, *, progress=False):
         warnings.append("No run is held out: the model is not validated on unseen data.")
     return HiddenResult(settings, model, spec, training, held_out, fit, estimates, simulation, tuple(warnings),
                         clock)
+
+
+def write_hidden_files(result, folder):
+    """Every file of the output folder of a :class:`HiddenResult`, into ``folder``."""
+    import json
+    from pathlib import Path
+
+    from . import hidden_report
+    from .estimation import write_estimate_csv
+    from .provenance import provenance
+    from .report import file_stems
+    from .schema import to_toml
+
+    folder = Path(folder)
+    model = result.model
+    model.save(folder / "model.json")
+    rows = [{"state": state, "term": expr, "coefficient": value, **stats}
+            for state, kept in model.equations() for expr, value, stats in kept]
+    pd.DataFrame(rows, columns=["state", "term", "coefficient"] + sorted(model.term_stats)).to_csv(
+        folder / "coefficients.csv", index=False)
+    result.validation_table().to_csv(folder / "heldout_metrics.csv", index=False)
+    stems = file_stems([item.run for item in result.estimates.runs])
+    for item, stem in zip(result.estimates.runs, stems):
+        if item.estimate is not None:
+            write_estimate_csv(item.estimate, folder / f"estimate_{stem}.csv")
+    (folder / "config_effective.toml").write_text(to_toml(result.settings, absolute_paths=True))
+    (folder / "provenance.json").write_text(json.dumps(provenance(result), indent=2) + "\n")
+    (folder / "warnings.txt").write_text("".join(f"{w}\n" for w in result.warnings))
+    (folder / "summary.txt").write_text(hidden_report.summary(result) + "\n")
+    figures = hidden_report.write_figures(result, folder, stems) if result.settings.output.figures else {}
+    if result.settings.output.report:
+        (folder / "report.html").write_text(hidden_report.render_report(result, figures, stems), encoding="utf-8")
