@@ -22,6 +22,7 @@ licensed engineering practice.
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -148,7 +149,9 @@ def fit_hidden(spec, training, smoothed, settings, interpolation):
     protected = set(start.fixed) | {(lift.state, lift.term) for lift in start.lifts}
     dropped, notes, rounds = [], list(start.notes), 0
     while True:
-        result = refine(_structure(spec, coefficients, start.fixed), runs, state_guess=guess, **options)
+        with warnings.catch_warnings():  # a diverged free run is reported in the result, not as numpy's warning
+            warnings.filterwarnings("ignore", "Mean of empty slice", RuntimeWarning)
+            result = refine(_structure(spec, coefficients, start.fixed), runs, state_guess=guess, **options)
         rounds += 1
         if not spec.from_library or rounds > settings.hidden.rounds or not result.converged:
             break
@@ -216,7 +219,8 @@ def _model(spec, result, start, settings, z, arbitrary, dropped, rounds, run_nam
         },
         "identifiability": {
             "not_identifiable": list(result.not_identifiable),
-            "scale": list(result.scale_notes),
+            "scale": [note.replace("in Structure.fixed", "in [hidden].known").replace(
+                "in fixed_initial", "in [hidden].initial") for note in result.scale_notes],
             "arbitrary": list(arbitrary),
             "parameters": list(result.parameter_names),
             "singular_values": [float(v) for v in result.singular_values],

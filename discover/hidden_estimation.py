@@ -90,6 +90,16 @@ class Estimates:
         }
 
 
+def _typical(trajectories):
+    """Mean and standard deviation (1 where it is 0 or undefined) of each state over the finite rows."""
+    stacked = np.vstack(trajectories)
+    rows = stacked[np.isfinite(stacked).all(axis=1)]
+    if not len(rows):
+        return np.zeros(stacked.shape[1]), np.ones(stacked.shape[1])
+    spread = rows.std(axis=0)
+    return rows.mean(axis=0), np.where(spread > 0, spread, 1.0)
+
+
 def _one_step(model, t, x, u, interpolation):
     """x(t_{k+1}) predicted by one RK4 step from x(t_k); shape (n_samples - 1, n_states)."""
     h = np.diff(t)[:, None]
@@ -119,7 +129,7 @@ def noise_levels(model, smoothed, refinement, n_measured, interpolation):
         residuals.append(step[keep])
         seconds += float(np.sum(np.diff(run.t)[keep]))
     residuals = np.vstack(residuals)
-    spread = np.nanstd(np.vstack(refinement.simulated_states), axis=0)
+    spread = _typical(refinement.simulated_states)[1]
     length = max(seconds, 1e-300)
     floor = PROCESS_FLOOR * np.where(spread > 0, spread, 1.0) / np.sqrt(length / max(len(smoothed.full), 1))
     process = np.sqrt(np.sum(residuals ** 2, axis=0) / length) if len(residuals) else floor.copy()
@@ -166,9 +176,7 @@ def estimate_runs(model, fit, smoothed_train, smoothed_held, training, held_out,
     f, g = fast_functions(model, structure_from_model(model, hidden=model.hidden_states,
                                                       outputs=model.output_expressions))
     measurement, process = noise_levels(model, smoothed_train, refinement, n_measured, interpolation)
-    stacked = np.vstack(refinement.simulated_states)
-    typical, spread = np.nanmean(stacked, axis=0), np.nanstd(stacked, axis=0)
-    spread = np.where(spread > 0, spread, 1.0)
+    typical, spread = _typical(refinement.simulated_states)
     notes, runs = [], []
     jobs = [(run, smooth, "training", x0) for run, smooth, x0 in
             zip(training.runs, smoothed_train.full, refinement.initial_states)]

@@ -54,6 +54,15 @@ class HiddenResult:
         return pd.DataFrame(rows, columns=["run", "output", "rmse", "nrmse", "nrmse_fit_percent", "diverged"])
 
 
+def state_extent(trajectories):
+    """(min, max) of every state over the fitted free runs; 0 and 1 for a state that is never finite."""
+    stacked = np.vstack(trajectories)
+    finite = np.isfinite(stacked)
+    low = np.array([stacked[finite[:, k], k].min() if finite[:, k].any() else 0.0 for k in range(stacked.shape[1])])
+    high = np.array([stacked[finite[:, k], k].max() if finite[:, k].any() else 1.0 for k in range(stacked.shape[1])])
+    return low, high
+
+
 def run_hidden(settings, *, progress=False):
     """Run a config with hidden states; return a :class:`HiddenResult` (nothing is written)."""
     clock, last = {}, time.perf_counter()
@@ -78,8 +87,7 @@ def run_hidden(settings, *, progress=False):
     interpolation = guess_interpolation(training.runs[0].u) if rule == "auto" else rule
     fit = fit_hidden(spec, training, smoothed, settings, interpolation)
     done("output error")
-    stacked = np.vstack(fit.refinement.simulated_states)
-    low, high = np.nanmin(stacked, axis=0), np.nanmax(stacked, axis=0)
+    low, high = state_extent(fit.refinement.simulated_states)
     sim = settings.simulation
     simulation = simulation_settings(low, high, method=sim.method, rtol=sim.rtol, atol=sim.atol,
                                      divergence_factor=sim.divergence_factor, interpolation=sim.input_interpolation,

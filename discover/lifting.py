@@ -114,6 +114,43 @@ def _block_changes(t, h):
     return out
 
 
+def read_states(spec, smoothed):
+    """States read off the data: the measured ones, and a hidden state that an output shows alone.
+
+    An output affine in a single hidden state h, ``y = α·h + β(u)`` (a calibration, a
+    feed-through), gives ``h = (y − β(u)) / α`` along the smoothed output; its rate comes
+    from the [derivatives] method applied to that trajectory. Returns (names, per-run
+    values, per-run rates), untrimmed.
+    """
+    from .derivatives import DERIVATIVE_METHODS
+
+    known = spec.states + spec.inputs
+    names = list(spec.measured)
+    values = [{m: run.x[:, k] for k, m in enumerate(spec.measured)} for run in smoothed.full]
+    rates = [{m: run.x_dot[:, k] for k, m in enumerate(spec.measured)} for run in smoothed.full]
+    for column, (name, text) in enumerate(spec.outputs.items()):
+        expression = parse_expression(text, known)
+        states = [n for n in expression.names if n in spec.states]
+        if name in spec.measured or len(states) != 1 or states[0] not in spec.hidden or states[0] in names:
+            continue
+        h = states[0]
+        per_run = []
+        for run in smoothed.full:
+            columns = {n: run.u[:, k] for k, n in enumerate(spec.inputs)}
+            at = [expression.evaluate({**columns, h: np.full(len(run.t), v)}) for v in (0.0, 1.0, 2.0)]
+            slope = at[1] - at[0]
+            if not np.allclose(at[2] - at[1], slope) or not np.all(np.abs(slope) > 0):
+                break  # not affine in h, or h does not show
+            per_run.append((run.x[:, column] - at[0]) / slope)
+        else:
+            names.append(h)
+            for r, (run, trajectory) in enumerate(zip(smoothed.full, per_run)):
+                values[r][h] = trajectory
+                rates[r][h] = DERIVATIVE_METHODS[smoothed.method](run.t - run.t[0], trajectory[:, None],
+                                                                  **dict(smoothed.options))[1][:, 0]
+    return tuple(names), values, rates
+
+
 def _lstsq(theta, target):
     if theta.shape[1] == 0:
         return np.zeros(0)
@@ -141,11 +178,18 @@ def start_values(spec, smoothed, *, scale_rule="unset"):
     known_names = states + inputs
     parsed = {(s, t): parse_expression(t, known_names) for s in states for t in spec.equations[s]}
     runs = smoothed.trimmed
+    trim = smoothed.trim
+    readable, read_values, rates = read_states(spec, smoothed)
+    keep = [slice(trim, len(run.t) - trim) for run in smoothed.full]
+    values_trimmed = [{n: v[k] for n, v in run_values.items()} for run_values, k in zip(read_values, keep)]
+    rates_trimmed = [{n: v[k] for n, v in run_rates.items()} for run_rates, k in zip(rates, keep)]
     notes, fixed = [], set(spec.known)
     lifts = []
     for h in spec.hidden:
+        if h in readable:
+            continue  # read off an output
         anchored = any(s == h and h not in parsed[(s, t)].names for s, t in spec.known)
-        for m in spec.measured:
+        for m in readable:
             found = [(t, power_of(t, h, known_names)) for t in spec.equations[m] if parsed[(m, t)].names == (h,)]
             found = [(t, p) for t, p in found if p is not None]
             if found:
@@ -158,15 +202,9 @@ def start_values(spec, smoothed, *, scale_rule="unset"):
         else:
             notes.append(NOT_LIFTED.format(state=h))
     lifted = {lift.hidden for lift in lifts}
-    measured_set = set(spec.measured) | set(inputs)
-
-    def columns_of(run, hidden_values):
-        columns = {name: run.x[:, k] for k, name in enumerate(spec.measured)}
-        columns.update({name: run.u[:, k] for k, name in enumerate(inputs)})
-        columns.update(hidden_values)
-        return columns
-
-    base = [columns_of(run, {}) for run in runs]
+    measured_set = set(readable) | set(inputs)
+    base = [{**read, **{name: run.u[:, k] for k, name in enumerate(inputs)}}
+            for run, read in zip(runs, values_trimmed)]
     coefficients = {s: {t: spec.known.get((s, t), 0.0) for t in spec.equations[s]} for s in states}
 
     def measured_terms(m):
@@ -183,10 +221,9 @@ def start_values(spec, smoothed, *, scale_rule="unset"):
     layout = []
     for lift in lifts:
         terms = measured_terms(lift.state)
-        k = spec.measured.index(lift.state)
-        theta = np.vstack([np.column_stack([parsed[(lift.state, t)].evaluate(c) for t in terms]
-                                           if terms else np.empty((len(run.t), 0))) for run, c in zip(runs, base)])
-        target = np.concatenate([run.x_dot[:, k] - known_part(lift.state, c) for run, c in zip(runs, base)])
+        theta = np.vstack([(np.column_stack([parsed[(lift.state, t)].evaluate(c) for t in terms])
+                            if terms else np.empty((len(run.t), 0))) for run, c in zip(runs, base)])
+        target = np.concatenate([rate[lift.state] - known_part(lift.state, c) for rate, c in zip(rates_trimmed, base)])
         layout.append((lift, terms, _lstsq(theta, target)))
     c_start = {lift.hidden: spec.known.get((lift.state, lift.term), 1.0) for lift in lifts}
 
@@ -198,11 +235,10 @@ def start_values(spec, smoothed, *, scale_rule="unset"):
             i += len(terms)
             c = p[i] if lift.coupling_free else c_start[lift.hidden]
             i += int(lift.coupling_free)
-            k = spec.measured.index(lift.state)
             for r, (run, columns) in enumerate(zip(runs, base)):
                 rest = sum((a[j] * parsed[(lift.state, t)].evaluate(columns) for j, t in enumerate(terms)),
                            np.zeros(len(run.t)))
-                s = (run.x_dot[:, k] - known_part(lift.state, columns) - rest) / c
+                s = (rates_trimmed[r][lift.state] - known_part(lift.state, columns) - rest) / c
                 paths[r][lift.hidden], penalty = _invert(s, lift.power)
                 penalties.append(ROOT_PENALTY * penalty)
         return paths, penalties
@@ -267,24 +303,26 @@ def start_values(spec, smoothed, *, scale_rule="unset"):
         paths = [{} for _ in runs]
     # The other equations: derivative regressions on the measured and lifted columns.
     lifted_equations = {lift.state for lift in lifts}
-    for k, m in enumerate(spec.measured):
+    for m in readable:
         if m in lifted_equations:
             continue
         terms = [t for t in spec.equations[m] if (m, t) not in spec.known
                  and set(parsed[(m, t)].names) <= measured_set | lifted]
         theta, target = [], []
-        for run, columns, path in zip(runs, base, paths):
+        for run, columns, path, rate in zip(runs, base, paths, rates_trimmed):
             full = {**columns, **path}
             with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
                 theta.append(np.column_stack([parsed[(m, t)].evaluate(full) for t in terms]) if terms
                              else np.empty((len(run.t), 0)))
-            target.append(run.x_dot[:, k] - np.broadcast_to(known_part(m, full), (len(run.t),)))
+            target.append(rate[m] - np.broadcast_to(known_part(m, full), (len(run.t),)))
         coefficients[m].update(zip(terms, _lstsq(np.nan_to_num(np.vstack(theta)),
                                                  np.nan_to_num(np.concatenate(target)))))
     guesses = []
-    trim = smoothed.trim
-    for run, path in zip(smoothed.full, paths):
+    for run, path, read in zip(smoothed.full, paths, read_values):
         guess = np.full((len(run.t), len(states)), np.nan)
+        for h in spec.hidden:
+            if h in read:
+                guess[:, states.index(h)] = read[h]
         for h, values in path.items():
             lift = next(lift for lift in lifts if lift.hidden == h)
             values = np.maximum(values, 0.0) if not float(1.0 / lift.power).is_integer() else values
