@@ -147,12 +147,18 @@ def fit_hidden(spec, training, smoothed, settings, interpolation):
                    divergence_factor=settings.simulation.divergence_factor)
     coefficients, guess = start.coefficients, list(start.state_guess)
     protected = set(start.fixed) | {(lift.state, lift.term) for lift in start.lifts}
-    dropped, notes, rounds = [], list(start.notes), 0
+    dropped, notes, rounds, previous = [], list(start.notes), 0, None
     while True:
         with warnings.catch_warnings():  # a diverged free run is reported in the result, not as numpy's warning
             warnings.filterwarnings("ignore", "Mean of empty slice", RuntimeWarning)
             result = refine(_structure(spec, coefficients, start.fixed), runs, state_guess=guess, **options)
         rounds += 1
+        if previous is not None and not result.converged:
+            # The refit without the small terms failed: keep the converged fit with them.
+            notes.append(f"The output-error refit without {', '.join(dropped[-len(small):])} did not converge; "
+                         "the fit with them is kept.")
+            result, dropped = previous, dropped[:-len(small)]
+            break
         if not spec.from_library or rounds > settings.hidden.rounds or not result.converged:
             break
         small = [(s, t) for (s, t), share in shares(spec, result, [run.u for run in runs]).items()
@@ -160,6 +166,7 @@ def fit_hidden(spec, training, smoothed, settings, interpolation):
         if not small:
             break
         dropped += [f"{t} in d({s})/dt" for s, t in small]
+        previous = result
         coefficients = {s: {t: v for t, v in terms.items() if (s, t) not in small}
                         for s, terms in result.coefficients.items()}
         guess = [x.copy() for x in result.simulated_states]  # NaN after a diverged stop
@@ -170,7 +177,10 @@ def fit_hidden(spec, training, smoothed, settings, interpolation):
                      "coefficients are the best point reached, not a fit to trust.")
     free_pairs = [(s, t) for s in spec.states for t in result.coefficients[s] if (s, t) not in result.fixed]
     arbitrary = tuple(coefficient_name(s, t) for s, t in free_pairs
-                      if not np.isfinite(result.standard_errors[s][t]))
+                      if not np.isfinite(result.standard_errors[s][t])) if result.singular_values.size else ()
+    if not result.singular_values.size:
+        notes.append("What the data determine was not computed (the free run of the fitted model diverged); "
+                     "no coefficient is established.")
     if arbitrary:
         notes.append(ARBITRARY.format(names=", ".join(arbitrary)))
     model = _model(spec, result, start, settings, norm.ppf(0.5 + settings.refine.level / 2), arbitrary, dropped,

@@ -182,14 +182,14 @@ def estimate_runs(model, fit, smoothed_train, smoothed_held, training, held_out,
             zip(training.runs, smoothed_train.full, refinement.initial_states)]
     jobs += [(run, smooth, "held_out", None) for run, smooth in zip(held_out.runs, smoothed_held.full)]
     for run, smooth, role, x0 in jobs:
-        cov_spread = np.where(np.arange(len(typical)) < n_measured, 2 * measurement[:n_measured].max(initial=0),
-                              0.1 * spread)
+        # Prior spread: twice the noise for a measured state; for a hidden one a tenth of its spread
+        # from the fitted initial value of a training run, its whole spread on a held-out run.
+        cov_spread = 0.1 * spread
         if x0 is None:
             x0 = typical.copy()
             x0[:n_measured] = smooth.x[0, :n_measured]
-            cov_spread = np.where(np.arange(len(typical)) < n_measured, cov_spread, spread)
-        if n_measured:
-            cov_spread[:n_measured] = np.maximum(2 * measurement[:n_measured], 1e-9 * spread[:n_measured])
+            cov_spread = spread.copy()
+        cov_spread[:n_measured] = np.maximum(2 * measurement[:n_measured], 1e-9 * spread[:n_measured])
         result, message = None, ""
         if estimate:
             try:

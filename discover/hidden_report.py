@@ -26,7 +26,10 @@ def identifiability_lines(model):
         lines.append("The numbers of " + ", ".join(record["arbitrary"]) + " are arbitrary: one point of a family "
                      "that fits equally well, not findings. Fix one of them with [hidden].known (a known "
                      "component value) or set [hidden].scale = \"unit_coupling\".")
-    if not lines:
+    if not record.get("singular_values"):
+        lines.append("Identifiability: not computed (the free run of the fitted model diverged); no coefficient "
+                     "is established.")
+    elif not lines:
         lines.append(PLAIN)
     return lines
 

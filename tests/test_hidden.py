@@ -191,3 +191,13 @@ def test_more_hidden_states_than_the_data_support(rlc_folder):
         discover.run(config)
     text = str(info.value)
     assert "\n" not in text and "[hidden].states" in text and "per unknown" in text
+
+
+def test_simulate_command_refuses_a_model_with_hidden_states(fixed, rlc_folder, tmp_path):
+    from discover.exceptions import ModelFileError
+    from discover.replay import replay_file
+
+    fixed.model.save(tmp_path / "model.json")
+    with pytest.raises(ModelFileError, match="hidden states \\(i\\)") as info:
+        replay_file(tmp_path / "model.json", rlc_folder / "run_2.csv")
+    assert "\n" not in str(info.value) and "estimate_states" in str(info.value)
