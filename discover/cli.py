@@ -101,6 +101,8 @@ def _run(args, session):
         started = time.perf_counter()
         written = claim.publish(lambda folder: write_files(result, folder))
         outputs_seconds = time.perf_counter() - started
+    if getattr(result, "spec", None) is not None:  # a run with hidden states
+        from .hidden_report import summary
     print(summary(result))
     if args.verbose:
         stages = {**result.timings, "outputs": outputs_seconds}

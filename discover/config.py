@@ -100,6 +100,7 @@ def _effective(raw, where):
                 raise ConfigError(f"{where}: [{name}].{key} is required.")
             effective[name][key] = _check_value(where, name, key, spec, value)
     _normalize_names(effective["data"])
+    effective["hidden"]["states"] = [unicodedata.normalize("NFKC", n.strip()) for n in effective["hidden"]["states"]]
     _normalize_term_names(effective["terms"])
     _check_relations(where, effective)
     effective["_notes"] = notes
@@ -164,6 +165,7 @@ def _describe(spec):
         "float_list": "a list of numbers",
         "table": "a table of name = \"column\" pairs",
         "table_list": "an array of tables ([[...]] entries)",
+        "mapping": "a table",
     }[spec.kind]
     if spec.odd:
         words = "an odd int"
@@ -203,6 +205,10 @@ def _check_value(where, section, key, spec, value):
         if not isinstance(value, dict) or not all(isinstance(v, str) for v in value.values()):
             fail()
         return dict(value)
+    if kind == "mapping":
+        if not isinstance(value, dict):
+            fail()
+        return dict(value)
     if kind == "table_list":
         if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
             fail()
@@ -238,8 +244,9 @@ def _is_number(value):
 def _check_relations(where, config):
     """Checks that involve several keys."""
     data, sel, terms = config["data"], config["selection"], config["terms"]
-    if not data["states"]:
-        raise ConfigError(f"{where}: [data].states must name at least one state column.")
+    if not data["states"] and not config["hidden"]["outputs"]:
+        raise ConfigError(f"{where}: [data].states must name at least one state column (or [hidden].outputs "
+                          "at least one measured column).")
     if not data["files"]:
         raise ConfigError(f"{where}: [data].files must list at least one file or glob pattern.")
     if data["time"] in list(data["states"]) + list(data["inputs"]):
@@ -285,12 +292,15 @@ def _check_relations(where, config):
     except ConfigError as err:
         raise ConfigError(f"{where}: {err}") from None
     from .expressions import parse_expression
+    from .hidden_config import check_hidden
 
+    states = list(data["states"]) + list(config["hidden"]["states"])  # hidden states enter terms too
     for i, text in enumerate(terms["custom"]):
-        parse_expression(text, list(data["states"]) + list(data["inputs"]), where=f"{where}: [terms].custom[{i}]")
+        parse_expression(text, states + list(data["inputs"]), where=f"{where}: [terms].custom[{i}]")
+    check_hidden(where, config)
     _check_ranking(where, config)
     _check_choose(where, config)
-    known = set(data["states"]) | set(data["inputs"])
+    known = set(states) | set(data["inputs"])
     for key in ("variables", "trig_variables"):
         for name in terms[key] or []:
             if name not in known:

@@ -101,7 +101,10 @@ def _json_document(matrices, kind):
         document["equation"] = "dx/dt = A x + B u + offset"
     else:
         document["equation"] = "dx/dt ≈ residual + A (x - x_op) + B (u - u_op)"
-    for key in ("A", "B", "C", "D", "offset", "residual", "x_op", "u_op"):
+    if "outputs" in matrices:  # a model with hidden states or further outputs: y = C x + D u + output_offset
+        document["outputs"] = list(matrices["outputs"])
+        document["output_equation"] = "y = C x + D u + output_offset"
+    for key in ("A", "B", "C", "D", "offset", "residual", "x_op", "u_op", "output_offset"):
         if key in matrices:
             document[key] = np.asarray(matrices[key], dtype=float).tolist()
     return document

@@ -15,6 +15,7 @@ import numpy as np
 
 from .exceptions import ExportError
 from .export_terms import as_model, kept_trees
+from .expressions import parse_expression
 from .symbolic import column_names, depends_on, derivative
 
 CONTROL_HINT = "python-control is not installed; `pip install control` to get a control.StateSpace."
@@ -86,7 +87,9 @@ def linear_matrices(model):
     -------
     dict
         ``A`` of shape (n_states, n_states), ``B`` of shape (n_states, n_inputs),
-        ``offset`` of shape (n_states,), and ``states`` / ``inputs`` (the row and
+        ``offset`` of shape (n_states,); for a model that records its outputs (hidden
+        states) also ``outputs``, ``C`` (n_outputs, n_states), ``D`` (n_outputs, n_inputs)
+        and ``output_offset`` (:func:`output_matrices`); and ``states`` / ``inputs`` (the row and
         column order).
 
     Raises
@@ -107,8 +110,57 @@ def linear_matrices(model):
     zero_x, zero_u = np.zeros(len(model.state_names)), np.zeros(len(model.input_names))
     a, b = _jacobians(model, zero_x, zero_u)
     offset = np.atleast_1d(model.rhs(zero_x, zero_u if len(zero_u) else None))
-    return {"states": list(model.state_names), "inputs": list(model.input_names), "A": a, "B": b,
-            "offset": np.asarray(offset, dtype=float)}
+    matrices = {"states": list(model.state_names), "inputs": list(model.input_names), "A": a, "B": b,
+                "offset": np.asarray(offset, dtype=float)}
+    if has_outputs(model):  # a model with hidden states or further outputs: y = C x + D u + output_offset
+        matrices.update(output_matrices(model))
+    return matrices
+
+
+def has_outputs(model):
+    """Whether the model file names its outputs or hidden states (else every state is measured)."""
+    return bool(model.info.get("outputs") or model.hidden_states)
+
+
+def output_matrices(model, x_op=None, u_op=None):
+    """C, D and the output offset of y = g(x, u), with the output names.
+
+    Without an operating point every output must be affine in the states and inputs
+    (C and D exact: differences from the origin along each unit vector); with one, the
+    slopes at (x_op, u_op) by central differences (exact for affine outputs), and
+    ``output_offset`` = g(x_op, u_op). A model without output records: C = I, D = 0.
+    """
+    n_states, n_inputs = len(model.state_names), len(model.input_names)
+    names = list(model.output_expressions)
+    known = tuple(model.state_names) + tuple(model.input_names)
+    if x_op is None:
+        for name, expr in model.output_expressions.items():
+            if not _is_affine(parse_expression(expr, known, where=f"output {name!r}")._tree):
+                raise NonlinearModelError(
+                    f"output {name!r} = {expr!r} is not linear in the states and inputs; a linear export needs "
+                    "affine outputs. Use the 'linearize' export at an operating point instead.")
+        x0, u0 = np.zeros(n_states), np.zeros(n_inputs)
+    else:
+        x0, u0 = np.asarray(x_op, dtype=float), np.asarray(u_op if u_op is not None else [], dtype=float)
+
+    def g(x, u):
+        return model.outputs(x[None, :], u[None, :])[0]
+
+    base = g(x0, u0)
+    c, d = np.zeros((len(names), n_states)), np.zeros((len(names), n_inputs))
+    for columns, vector, point in ((c, x0, "x"), (d, u0, "u")):
+        for j in range(len(vector)):
+            step = np.zeros(len(vector))
+            if x_op is None:
+                step[j] = 1.0
+                plus = g(x0 + step, u0) if point == "x" else g(x0, u0 + step)
+                columns[:, j] = plus - base
+            else:
+                step[j] = 1e-6 * max(1.0, abs(vector[j]))
+                plus = g(x0 + step, u0) if point == "x" else g(x0, u0 + step)
+                minus = g(x0 - step, u0) if point == "x" else g(x0, u0 - step)
+                columns[:, j] = (plus - minus) / (2 * step[j])
+    return {"outputs": names, "C": c, "D": d, "output_offset": base}
 
 
 def _vector(values, names, label):
@@ -161,15 +213,19 @@ def linearize(model, x_op, u_op=None):
 
 
 def state_space_matrices(model, x_op=None, u_op=None):
-    """(matrices dict, how) for a state-space export: C = I (every state measured), D = 0."""
+    """(matrices dict, how) for a state-space export: C and D of the model's outputs; C = I and D = 0
+    for a model without output records (every state measured)."""
     model = as_model(model)
     if x_op is None:
         matrices, how = linear_matrices(model), "linear"
     else:
         matrices, how = linearize(model, x_op, u_op), "linearized"
     n_states, n_inputs = len(model.state_names), len(model.input_names)
-    matrices["C"] = np.eye(n_states)
-    matrices["D"] = np.zeros((n_states, n_inputs))
+    if has_outputs(model):
+        matrices.update(output_matrices(model, x_op, u_op if x_op is not None else None))
+    else:
+        matrices["C"] = np.eye(n_states)
+        matrices["D"] = np.zeros((n_states, n_inputs))
     return matrices, how
 
 
@@ -178,7 +234,8 @@ def to_state_space(model, x_op=None, u_op=None):
 
     Without an operating point the model must be linear (:func:`linear_matrices`);
     with one it is linearized there (:func:`linearize`). C is the identity (every
-    state is an output) and D is zero. The offset, or the residual at the operating
+    state is an output) and D is zero, unless the model file records its outputs (hidden
+    states, y = g(x, u)): then C and D are those of g (:func:`output_matrices`). The offset, or the residual at the operating
     point, is not part of a state-space object: read it from those functions.
 
     Raises
@@ -194,4 +251,4 @@ def to_state_space(model, x_op=None, u_op=None):
     model = as_model(model)
     return control.ss(matrices["A"], matrices["B"], matrices["C"], matrices["D"],
                       states=list(model.state_names), inputs=list(model.input_names),
-                      outputs=list(model.state_names))
+                      outputs=list(matrices.get("outputs", model.state_names)))

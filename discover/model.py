@@ -94,6 +94,71 @@ class Model:
             limits=limits, state_names=list(self.state_names), time_limit=time_limit,
         )
 
+    # --- states and outputs (model files with hidden states; older files: every state measured)
+
+    @property
+    def hidden_states(self):
+        """States without a measurement (``info["hidden"]``); () for a fully measured model."""
+        return tuple(self.info.get("hidden", ()))
+
+    @property
+    def output_expressions(self):
+        """``{output name: expression}``; default every state not hidden is its own output."""
+        listed = self.info.get("outputs")
+        if not listed:
+            return {s: s for s in self.state_names if s not in self.hidden_states}
+        return {entry["name"]: entry["expr"] for entry in listed}
+
+    def outputs(self, x, u=None):
+        """y = g(x, u) for x of shape (n_samples, n_states); shape (n_samples, n_outputs)."""
+        x = np.atleast_2d(np.asarray(x, dtype=float))
+        u = np.empty((len(x), 0)) if u is None else np.asarray(u, dtype=float).reshape(len(x), -1)
+        known = tuple(self.state_names) + tuple(self.input_names)
+        columns = {**{s: x[:, k] for k, s in enumerate(self.state_names)},
+                   **{n: u[:, k] for k, n in enumerate(self.input_names)}}
+        return np.column_stack([parse_expression(e, known).evaluate(columns)
+                                for e in self.output_expressions.values()])
+
+    def estimate_states(self, t, y, u=None, *, x0=None, x0_cov=None, measurement_std=None, process_std=None,
+                        interpolation=None):
+        """Filter and smooth this model's states (hidden ones included) from measured outputs.
+
+        Unscented Kalman filter and RTS smoother (:func:`discover.estimation.estimate_states`)
+        with the noise levels the run that fitted the model resolved (``info["estimation"]``)
+        unless given. ``y`` of shape (n_samples, n_outputs), columns in the order of
+        ``output_expressions``; x0 default: the estimation record's typical state.
+        Returns a :class:`discover.estimation.StateEstimate`.
+        """
+        from .estimation import estimate_states
+        from .simulate import guess_interpolation
+
+        record = self.info.get("estimation", {})
+        outputs = list(self.output_expressions)
+
+        def pick(given, key, names):
+            if given is not None:
+                return given
+            values = record.get(key)
+            if not isinstance(values, dict) or any(n not in values for n in names):
+                raise DiscoverError(f"estimate_states: give `{key}`; the model file records none for {names}.")
+            return np.array([float(values[n]) for n in names])
+
+        measurement_std = pick(measurement_std, "measurement_std", outputs)
+        process_std = pick(process_std, "process_std", list(self.state_names))
+        if x0 is None:
+            x0 = pick(None, "typical_state", list(self.state_names))
+        if x0_cov is None and isinstance(record.get("typical_spread"), dict):
+            spread = np.array([float(record["typical_spread"].get(s, 1.0)) for s in self.state_names])
+            x0_cov = np.diag(np.maximum(spread, 1e-12) ** 2)
+        t = np.asarray(t, dtype=float)
+        u_arr = np.empty((len(t), 0)) if u is None else np.asarray(u, dtype=float).reshape(len(t), -1)
+        if interpolation is None:
+            interpolation = record.get("interpolation") or guess_interpolation(u_arr)
+        return estimate_states(lambda x, uu: self.rhs(x, uu), lambda x, uu: self.outputs(x, uu), t, y,
+                               u_arr if self.input_names else None, state_names=self.state_names, x0=x0,
+                               x0_cov=x0_cov, measurement_std=measurement_std, process_std=process_std,
+                               interpolation=interpolation)
+
     def equations(self):
         """``[(state, [(expr, coefficient, {stat: value}), ...]), ...]`` for the kept terms."""
         result = []
@@ -188,10 +253,29 @@ def from_dict(document, where="model"):
             if _is_real(term.get(name)):
                 stats[name][j, i] = float(term[name])
     info = {k: v for k, v in document.items() if k not in ("format", "states", "inputs", "equations")}
+    _check_states_and_outputs(info, states, inputs, where)
     try:
         return Model(tuple(states), tuple(inputs), tuple(terms), coef, stats, info)
     except DiscoverError as err:
         _fail(where, str(err))
+
+
+def _check_states_and_outputs(info, states, inputs, where):
+    """The optional ``hidden`` and ``outputs`` keys (files without them: every state measured)."""
+    hidden = info.get("hidden", [])
+    if not isinstance(hidden, list) or any(h not in states for h in hidden):
+        _fail(where, f"'hidden' must list states of the model ({states}). Got {hidden!r}.")
+    outputs = info.get("outputs")
+    if outputs is None:
+        return
+    if not isinstance(outputs, list) or not all(isinstance(o, dict) and isinstance(o.get("name"), str)
+                                                and isinstance(o.get("expr"), str) for o in outputs):
+        _fail(where, "'outputs' must be a list of {\"name\": ..., \"expr\": ...} entries.")
+    for k, entry in enumerate(outputs):
+        try:
+            parse_expression(entry["expr"], tuple(states) + tuple(inputs), where=f"outputs[{k}] ({entry['name']!r})")
+        except DiscoverError as err:
+            _fail(where, str(err))
 
 
 def _is_real(value):

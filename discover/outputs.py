@@ -409,6 +409,11 @@ def write_files(result, folder):
     """Every file of the output folder, into ``folder``."""
     from . import report
 
+    if getattr(result, "spec", None) is not None:  # a run with hidden states (discover.hidden_pipeline)
+        from .hidden_pipeline import write_hidden_files
+
+        return write_hidden_files(result, folder)
+
     folder = Path(folder)
     model = result.model
     model.save(folder / "model.json")

@@ -167,6 +167,12 @@ class _StageClock:
 
 
 def _run(settings, executor, progress):
+    from .schema import uses_hidden
+
+    if uses_hidden(settings):  # hidden states or further outputs: fitted by output error
+        from .hidden_pipeline import run_hidden
+
+        return run_hidden(settings, progress=progress)
     data, where = settings.data, settings.source
     clock = _StageClock()
     training, held_out = load_dataset(settings, lazy_training=bool(data.chunk_rows))

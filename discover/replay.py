@@ -90,6 +90,10 @@ def replay_file(model_path, data_path, *, time=None, interpolation=None):
         Input between samples; default: the rule recorded in the model file.
     """
     model = load_model(model_path)
+    if model.hidden_states:
+        raise ModelFileError(f"{model_path}: the model has hidden states ({', '.join(model.hidden_states)}) that no "
+                             "column can start; `discover simulate` needs every state measured. Estimate them with "
+                             "discover.load_model(path).estimate_states(t, y, u).")
     time = time or model.info.get("time") or "t"
     if not isinstance(time, str):
         raise ModelFileError(f"{model_path}: 'time' must be the name of the time column. Got {time!r}.")

@@ -23,7 +23,8 @@ from .weak import DEFAULT_DEGREE_P, DEFAULT_TAU_HAT
 class Key:
     """One config key: its kind, default and limits.
 
-    kind is one of "int", "float", "bool", "str", "str_list", "float_list", "table".
+    kind is one of "int", "float", "bool", "str", "str_list", "float_list", "table" (of strings),
+    "table_list", "mapping" (any table, checked where it is used).
     A default of ``REQUIRED`` makes the key mandatory; ``None`` means "unset".
     """
 
@@ -151,6 +152,30 @@ SCHEMA = {
         # Wall-clock limit of one simulation (one run, or one batch of ensemble members), seconds.
         "simulation_time_limit": Key("float", 60.0, minimum=0.1),
     },
+    "hidden": {
+        # States without a column in the data; fitted by output error (discover.hidden). Empty: every
+        # state is measured and the run is the derivative-based pipeline, as without this section.
+        "states": Key("str_list", []),
+        # Further measured columns, each a function of states and inputs: {column = "expression"}.
+        # Every state in [data].states is its own output besides.
+        "outputs": Key("table", {}),
+        # Structure hypotheses: {state = ["term", ...]}; a state not listed takes the [terms] library.
+        "equations": Key("mapping", {}),
+        # Known terms, held at their value: {state = {"term" = coefficient}}.
+        "known": Key("mapping", {}),
+        # Known initial values of hidden states, the same in every run: {state = value}.
+        "initial": Key("mapping", {}),
+        # A hidden state whose scale no known term or initial value sets: "unset" fits with one
+        # coefficient held and says its numbers are arbitrary; "unit_coupling" fixes its coefficient
+        # in the measured equation it drives at 1 (the state in units of that equation's rate).
+        "scale": Key("str", "unset", choices=("unset", "unit_coupling")),
+        # Library equations: terms below this share |coef|*rms(term)/rms(derivative) are dropped,
+        # and the rest refitted by output error, at most `rounds` times.
+        "threshold": Key("float", 0.05, minimum=0.0),
+        "rounds": Key("int", 3, minimum=1, maximum=10),
+        # Reconstruct every run's states by an unscented Kalman filter and RTS smoother.
+        "estimate": Key("bool", True),
+    },
     "output": {
         "dir": Key("str", None, nullable=True),
         "figures": Key("bool", True),
@@ -218,7 +243,7 @@ def _toml_value(value):
 # --------------------------------------------------------------------------- frozen settings
 
 _TYPES = {"int": int, "float": float, "bool": bool, "str": str, "str_list": tuple, "float_list": tuple,
-          "table": Mapping, "table_list": tuple}
+          "table": Mapping, "table_list": tuple, "mapping": Mapping}
 
 
 def _section_class(name, keys):
@@ -255,6 +280,7 @@ class Settings:
     refine: object
     compute: object
     output: object
+    hidden: object = None
     source: str = "config"
     base: str = "."
     notes: tuple = ()
@@ -266,6 +292,8 @@ class Settings:
             value = getattr(self, f.name)
             if f.name == "derivatives":
                 out["derivatives"] = {"method": value.method, "trim": value.trim, **_thaw(value.options)}
+            elif f.name == "hidden" and not uses_hidden(self):
+                continue  # not in use: configs and their TOML stay as without the section
             elif f.name in SECTION_CLASSES:
                 out[f.name] = {g.name: _thaw(getattr(value, g.name)) for g in fields(value)}
         return out
@@ -273,6 +301,12 @@ class Settings:
     def library_table(self):
         """``[terms]`` as a mapping (libraries of [[ranking.libraries]] have the same keys)."""
         return {f.name: getattr(self.terms, f.name) for f in fields(self.terms)}
+
+
+def uses_hidden(settings):
+    """Whether a run has hidden states or further outputs (the output-error path, discover.hidden)."""
+    hidden = settings.hidden
+    return hidden is not None and bool(hidden.states or hidden.outputs)
 
 
 def _freeze(value):

@@ -23,7 +23,10 @@ def message(raw):
 
 
 def test_defaults_fill_every_key():
-    config = validate(BASE, "cfg.toml").as_dict()
+    settings = validate(BASE, "cfg.toml")
+    config = settings.as_dict()
+    # [hidden] is left out of the dict (and the TOML) while unused; its defaults are on the settings.
+    config["hidden"] = {key: getattr(settings.hidden, key) for key in SCHEMA["hidden"]}
     for section, keys in SCHEMA.items():
         table = config if section == "" else config[section]
         assert set(keys) <= set(table)
@@ -113,3 +116,45 @@ def test_effective_config_round_trips_through_toml():
     config = validate(merged("data", rename={"x": "X [m]"}), "cfg.toml")
     again = validate(tomllib.loads(to_toml(config)), "cfg.toml")
     assert again.as_dict() == config.as_dict()
+
+
+# --------------------------------------------------------------------------- [hidden]
+
+HIDDEN = {"states": ["i"], "equations": {"x": ["i"], "i": ["x", "i", "u"]}}
+
+
+def test_hidden_state_in_no_equation_names_the_key():
+    text = message(merged("hidden", states=["i", "h"], equations={"x": ["i"], "i": ["x", "i", "u"], "h": ["h"]}))
+    assert "\n" not in text
+    assert text.startswith("cfg.toml: [hidden].states: 'h' appears in no output and in no equation")
+
+
+def test_output_expression_with_an_unknown_name_names_the_key():
+    text = message(merged("hidden", **HIDDEN, outputs={"sensor": "x + q"}))
+    assert "\n" not in text
+    assert text.startswith("cfg.toml: [hidden].outputs.sensor:") and "unknown name 'q'" in text
+
+
+@pytest.mark.parametrize("keys, expected", [
+    ({"states": ["x"]}, "[hidden].states: 'x' is also a measured state"),
+    ({"known": {"x": {"i": "big"}}}, "[hidden].known.x.i must be a finite number"),
+    ({"initial": {"x": 1.0}}, "[hidden].initial.x: 'x' is not a hidden state"),
+    ({"equations": {"y": ["i"]}}, "[hidden].equations.y: 'y' is not a state"),
+    ({"scale": "fixed"}, "[hidden].scale must be one of 'unset', 'unit_coupling'"),
+])
+def test_bad_hidden_keys(keys, expected):
+    text = message(merged("hidden", **{**HIDDEN, **keys}))
+    assert "\n" not in text and expected in text, text
+
+
+def test_hidden_keys_without_hidden_states_are_refused():
+    assert "[hidden].known applies only with hidden states" in message(merged("hidden", known={"x": {"x": 1.0}}))
+
+
+def test_measured_only_config_is_unchanged_by_the_hidden_section():
+    # No [hidden] states: the effective config and its TOML are those of before the section existed.
+    config = validate(BASE, "cfg.toml")
+    assert "hidden" not in config.as_dict() and "[hidden]" not in to_toml(config)
+    with_hidden = validate(merged("hidden", **HIDDEN), "cfg.toml")
+    again = validate(tomllib.loads(to_toml(with_hidden)), "cfg.toml")
+    assert again.as_dict() == with_hidden.as_dict()

@@ -123,3 +123,50 @@ def test_cli_error_is_one_line_with_status(tmp_path):
     assert proc.returncode == 3
     assert proc.stderr.count("\n") == 1 and "matches no file" in proc.stderr
     assert "Traceback" not in proc.stderr
+
+
+# --------------------------------------------------------------------------- two tanks, upper level hidden
+
+
+@pytest.fixture(scope="module")
+def tanks(tmp_path_factory):
+    # Through the README command, into a folder of its own (figures and report as the demo writes them).
+    out = tmp_path_factory.mktemp("tanks") / "out"
+    assert main(["run", str(ROOT / "configs" / "tanks.toml"), "--out", str(out), "--force"]) == 0
+    return out, discover.load_model(out / "model.json")
+
+
+def test_tanks_hidden_upper_level_within_5_percent(tanks):
+    # Truth: the generator's noise-free trajectories (data_demo/make_tanks.py, solve_ivp DOP853).
+    import pandas as pd
+
+    from data_demo.make_tanks import RUNS, true_levels
+
+    out, _ = tanks
+    for name in RUNS:
+        t, _, levels, _ = true_levels(name)
+        estimate = pd.read_csv(out / f"estimate_{name}.csv")
+        np.testing.assert_allclose(estimate["time"], t)
+        error = estimate["level_upper"].to_numpy() - levels[:, 0]
+        assert np.sqrt(np.mean(error ** 2)) < 0.05 * np.sqrt(np.mean(levels[:, 0] ** 2)), name
+        assert (estimate["level_upper_low"] <= estimate["level_upper"]).all()
+        assert (estimate["level_upper"] <= estimate["level_upper_high"]).all()
+
+
+def test_tanks_equations_and_files(tanks):
+    from data_demo.make_tanks import TRUE_COEFFICIENTS as TANKS_TRUTH
+
+    out, model = tanks
+    assert model.hidden_states == ("level_upper",)
+    found = coefficient_map(model)
+    for state, expected in truth_map(TANKS_TRUTH).items():
+        assert set(found[state]) == set(expected), state
+        for key, value in expected.items():
+            assert found[state][key] == pytest.approx(value, rel=0.02), (state, key)  # 1.5 % noise: our tolerance
+    assert model.info["identifiability"]["arbitrary"] == []
+    assert {"estimate_heldout.png", "report.html", "heldout_metrics.csv"} <= {p.name for p in out.iterdir()}
+    assert "Hidden-state estimation" in (out / "report.html").read_text(encoding="utf-8")
+    with open(out / "heldout_metrics.csv") as handle:
+        header, row = handle.readline().strip().split(","), handle.readline().strip().split(",")
+    metrics = dict(zip(header, row))
+    assert metrics["output"] == "level_lower" and float(metrics["nrmse_fit_percent"]) > 90.0
