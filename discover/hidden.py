@@ -147,7 +147,7 @@ def fit_hidden(spec, training, smoothed, settings, interpolation):
                    divergence_factor=settings.simulation.divergence_factor)
     coefficients, guess = start.coefficients, list(start.state_guess)
     protected = set(start.fixed) | {(lift.state, lift.term) for lift in start.lifts}
-    dropped, notes, rounds, previous = [], list(start.notes), 0, None
+    dropped, notes, rounds, previous, small = [], list(start.notes), 0, None, []
     while True:
         with warnings.catch_warnings():  # a diverged free run is reported in the result, not as numpy's warning
             warnings.filterwarnings("ignore", "Mean of empty slice", RuntimeWarning)
