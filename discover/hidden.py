@@ -130,7 +130,7 @@ def fit_hidden(spec, training, smoothed, settings, interpolation):
     smoothed : discover.smoothing.SmoothedRuns
         The same runs smoothed and differentiated.
     settings : discover.schema.Settings
-    interpolation : {"linear", "zoh"}
+    interpolation : {"linear", "zoh"} or a sequence of them, one per training run
         Of the inputs between samples, as resolved.
     """
     from scipy.stats import norm

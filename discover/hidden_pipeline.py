@@ -21,6 +21,7 @@ from .hidden_estimation import Estimates, estimate_runs
 from .model import Model
 from .simulate import SimulationSettings, guess_interpolation, simulation_settings
 from .smoothing import smooth_runs
+from .window_choice import resolve_window
 
 NOT_RUN = ("With hidden states the model is fitted by output error; the derivative-based selection, the "
            "bootstrap ensemble and the ranking ([selection], [bootstrap], [ranking]) were not run.")
@@ -80,11 +81,14 @@ def run_hidden(settings, *, progress=False):
     training, held_out = load_dataset(columns)
     check_excitation(training, where)
     done("data")
+    # A window left to the data is chosen once from the measured channels, as in a measured-states run.
+    derivatives, _ = resolve_window(settings.derivatives, lambda: [run.x for run in training.runs])
+    settings = replace(settings, derivatives=derivatives)
     smoothed = smooth_runs(training, settings.derivatives, progress=progress)
     held_smoothed = smooth_runs(held_out, settings.derivatives)
     done("derivatives")
     rule = settings.simulation.input_interpolation
-    interpolation = guess_interpolation(training.runs[0].u) if rule == "auto" else rule
+    interpolation = [guess_interpolation(run.u) if rule == "auto" else rule for run in training.runs]
     fit = fit_hidden(spec, training, smoothed, settings, interpolation)
     done("output error")
     low, high = state_extent(fit.refinement.simulated_states)
@@ -93,7 +97,7 @@ def run_hidden(settings, *, progress=False):
                                      divergence_factor=sim.divergence_factor, interpolation=sim.input_interpolation,
                                      time_limit=settings.compute.simulation_time_limit)
     estimates = estimate_runs(fit.model, fit, smoothed, held_smoothed, training, held_out, simulation,
-                              interpolation, len(spec.measured), estimate=settings.hidden.estimate)
+                              interpolation[0], len(spec.measured), estimate=settings.hidden.estimate)
     info = dict(fit.model.info)
     info["estimation"] = estimates.record(fit.model)
     info["simulation"] = simulation.to_dict()

@@ -242,7 +242,7 @@ def _layout(runs, boundaries, substeps, interpolation):
         dt = np.diff(run.t[a:a + n + 1])
         h[: n * m, g] = np.repeat(dt / m, m)
         u0, u1 = run.u[a:a + n], run.u[a + 1:a + n + 1]
-        if interpolation == "zoh":
+        if interpolation[run_of[g]] == "zoh":  # one rule per run
             stage = np.broadcast_to(u0[:, None, None, :], (n, m, 3, n_inputs))
         else:
             stage = u0[:, None, None, :] + fractions[None, :, :, None] * (u1 - u0)[:, None, None, :]

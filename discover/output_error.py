@@ -85,7 +85,7 @@ def refine_model(model, training, smoothed, refine_settings, simulation, diverge
         return OutputFit(model, model.coef, None, False, "The model has no terms; nothing to refine.")
     runs = [MeasuredRun(run.t, run.x, run.u) for run in training.runs]
     options = dict(state_guess=[run.x for run in smoothed.full],
-                   interpolation=simulation.interpolation_for(training.runs[0].u),
+                   interpolation=[simulation.interpolation_for(run.u) for run in training.runs],
                    max_nfev=refine_settings.max_evaluations, time_limit=refine_settings.time_limit,
                    divergence_factor=divergence_factor)
     result = refine(structure_from_model(model), runs, **options)

@@ -143,9 +143,10 @@ def refine(
         Noise standard deviation of each output; None estimates it (:func:`noise_level`).
     continuity_weight : float, default=1000
         Weight of the continuity residuals relative to noise-scaled output residuals.
-    interpolation : {"linear", "zoh"} or None, default=None
-        Input between samples; None guesses from the first run
-        (:func:`discover.simulate.guess_interpolation`).
+    interpolation : {"linear", "zoh"}, a sequence of them (one per run), or None, default=None
+        Input between samples; None guesses it for each run
+        (:func:`discover.simulate.guess_interpolation`): step runs and smooth runs of one
+        fit each keep their own rule.
     substeps : int or None, default=None
         RK4 substeps per sample interval. None: the smallest with h·ρ ≤ RK4_STEP_LIMIT
         along the data for the starting model, raised and refitted once if the
@@ -201,9 +202,13 @@ def _refine(structure, runs, *, segment_length, initial_guess, fixed_initial, st
     n_runs, states = len(runs), structure.state_names
     n_states = len(states)
     if interpolation is None:
-        interpolation = guess_interpolation(runs[0].u)
-    if interpolation not in INTERPOLATIONS:
-        raise ConfigError(f"refine: `interpolation` must be one of {INTERPOLATIONS}. Got {interpolation!r}.")
+        interpolation = tuple(guess_interpolation(run.u) for run in runs)
+    elif isinstance(interpolation, str):
+        interpolation = (interpolation,) * n_runs
+    interpolation = tuple(interpolation)
+    if len(interpolation) != n_runs or any(rule not in INTERPOLATIONS for rule in interpolation):
+        raise ConfigError(f"refine: `interpolation` must be one of {INTERPOLATIONS}, or one per run. "
+                          f"Got {interpolation!r}.")
     if jacobian not in JACOBIANS:
         raise ConfigError(f"refine: `jacobian` must be one of {JACOBIANS}. Got {jacobian!r}.")
     for name, value, low in (("continuity_weight", continuity_weight, 0.0), ("time_limit", time_limit, 0.0),
@@ -446,6 +451,6 @@ def _refine(structure, runs, *, segment_length, initial_guess, fixed_initial, st
         simulated_states=tuple(sim_states),
         simulated_outputs=tuple(sim_outputs),
         output_rmse=output_rmse,
-        interpolation=interpolation,
+        interpolation=interpolation[0] if len(set(interpolation)) == 1 else "per run: " + ", ".join(interpolation),
         notes=tuple(notes),
     )
