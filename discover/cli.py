@@ -119,6 +119,10 @@ def _rank(args, session):
     from .report import ranking_lines
     from .rerank import rank_more
 
+    if not args.save and not Path(args.out_dir).is_dir():
+        what = "is a file" if Path(args.out_dir).exists() else "does not exist"
+        raise OutputError(f"{args.out_dir}: {what}; give the output folder of an earlier discover run "
+                          "(the folder holding model.json and ranking.csv).")
     target = Path(args.save) if args.save else Path(args.out_dir) / "ranking_updated.csv"
     if not target.parent.is_dir():
         what = "is a file, not a folder" if target.parent.exists() else "does not exist"

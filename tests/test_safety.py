@@ -359,3 +359,16 @@ def test_compatibility_characters_in_term_variables_and_a_byte_order_mark(tmp_pa
             '[terms]\nvariables = ["\u2126", "u"]\n[bootstrap]\nmembers = 0\n[ranking]\nenabled = false\n')
     config.write_bytes(b"\xef\xbb\xbf" + text.encode("utf-8"))  # a UTF-8 byte-order mark, as some editors write
     assert discover.run(config).model.state_names == ("\u03a9",)
+
+
+def test_rank_on_a_path_that_is_no_output_folder_says_so(tmp_path, capsys):
+    # A mistyped output folder (or the config given instead of it): one line naming the path
+    # and what is expected, not advice to create a folder (found in a new-user trial).
+    extra = tmp_path / "more.toml"
+    extra.write_text('[[ranking.hypotheses]]\nname = "h"\nx = ["x"]\n')
+    for wrong, what in ((tmp_path / "out_typo", "does not exist"), (extra, "is a file")):
+        assert main(["rank", str(wrong), str(extra)]) != 0
+        message = capsys.readouterr().err.strip()
+        assert message.count("\n") == 0 and f"{wrong}: {what}" in message
+        assert "earlier discover run" in message
+    assert not (tmp_path / "out_typo").exists()
