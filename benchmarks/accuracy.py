@@ -74,10 +74,10 @@ Metrics, per (system, noise, seed, method), then the median over seeds:
   error of the smoothed first sample grows with the local, not the average, expansion).
 
 Run:  python benchmarks/accuracy.py --quick                    # 1 seed, noise 1 % and 10 %
-      python benchmarks/accuracy.py --out /tmp/accuracy.md     # all systems, 4 noise levels, 3 seeds
+      python benchmarks/accuracy.py --out accuracy.md          # all systems, 4 noise levels, 3 seeds
       python benchmarks/accuracy.py --systems duffing,ring6 --noise 0.1,5 --seeds 0,1
-      python benchmarks/accuracy.py --quick --details /tmp/accuracy.csv   # per-seed rows with the models
-      python benchmarks/accuracy.py --from-details /tmp/accuracy.csv       # the tables again, no fitting
+      python benchmarks/accuracy.py --quick --details accuracy.csv        # per-seed rows with the models
+      python benchmarks/accuracy.py --from-details accuracy.csv            # the tables again, no fitting
 The tables are rewritten to ``--out`` after every case, so a long run leaves a partial
 table behind. Nothing here is asserted in tests; the targets of issue #12 are only reported.
 """

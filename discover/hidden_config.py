@@ -22,6 +22,7 @@ from typing import Mapping
 
 from .exceptions import ConfigError
 from .expressions import parse_expression
+from .refine_types import states_reaching_outputs
 from .terms import build_library, term_key
 
 __all__ = ["HiddenSpec", "check_hidden", "hidden_spec"]
@@ -192,16 +193,9 @@ def _check_reach(where, spec):
     """Every hidden state must reach an output, directly or through the equations of states that do."""
     parsed = {s: [parse_expression(t, spec.states + spec.inputs).names for t in terms]
               for s, terms in spec.equations.items()}
-    outputs = [parse_expression(e, spec.states + spec.inputs).names for e in spec.outputs.values()]
-    reaches = {n for names in outputs for n in names if n in spec.states}
-    changed = True
-    while changed:
-        changed = False
-        for state in list(reaches):
-            new = {n for names in parsed[state] for n in names if n in spec.states} - reaches
-            if new:
-                reaches |= new
-                changed = True
+    outputs = {n for e in spec.outputs.values() for n in parse_expression(e, spec.states + spec.inputs).names}
+    uses = {state: {n for names in terms for n in names} for state, terms in parsed.items()}
+    reaches = states_reaching_outputs(outputs, uses, spec.states)
     for name in spec.hidden:
         if name not in reaches:
             raise ConfigError(

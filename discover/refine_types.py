@@ -141,16 +141,10 @@ class Structure:
         object.__setattr__(self, "_parsed", parsed)
         object.__setattr__(self, "_parsed_outputs", parsed_outputs)
         # A hidden state must reach an output, directly or through other states' equations.
-        reaches = {s for e in parsed_outputs.values() for s in e.names if s in states}
-        changed = True
-        while changed:
-            changed = False
-            for (state, _), expression in parsed.items():
-                if state in reaches:
-                    new = {s for s in expression.names if s in states} - reaches
-                    if new:
-                        reaches |= new
-                        changed = True
+        uses = {}
+        for (state, _), expression in parsed.items():
+            uses.setdefault(state, set()).update(expression.names)
+        reaches = states_reaching_outputs({s for e in parsed_outputs.values() for s in e.names}, uses, states)
         for name in self.hidden:
             if name not in reaches:
                 raise ConfigError(
@@ -167,6 +161,18 @@ class Structure:
     def coefficient_names(self) -> tuple[str, ...]:
         """Name of every coefficient, ``"d(state)/dt:term"``, in equation order."""
         return tuple(coefficient_name(s, term) for s in self.state_names for term in self.equations[s])
+
+
+def states_reaching_outputs(output_names, uses, states):
+    """The states the outputs see: those named in an output, and, repeatedly, those named in
+    the equation (``uses``: state -> names in its terms) of a state already seen."""
+    reaches = {n for n in output_names if n in states}
+    frontier = set(reaches)
+    while frontier:
+        found = {n for state in frontier for n in uses.get(state, ()) if n in states} - reaches
+        reaches |= found
+        frontier = found
+    return reaches
 
 
 def coefficient_name(state: str, term: str) -> str:
