@@ -187,13 +187,13 @@ def main():
         measured = {name: pd.read_csv(folder / "runs" / f"{name}.csv")[STATES].to_numpy() for name in held_out}
         ours_terms = int(np.count_nonzero(result.model.coef))
         ref_terms = int(np.count_nonzero(model.coefficients()))
-        ours_fit = [fit_percent(measured[item["run"]], item["simulation"].x) for item in result.validation]
+        ours_fit = [fit_percent(measured[item.run], item.simulation.x) for item in result.validation]
         ref_fit = [fit_percent(measured[name], simulated[name]) for name in held_out]
     print(f"{N_RUNS} runs x {N_SAMPLES} samples, {len(STATES)} states + {len(INPUTS)} input, degree-3 library "
           f"({len(result.library_terms)} terms ours, {len(model.get_feature_names())} reference); "
           f"held out: {', '.join(held_out)}; BLAS on 1 thread")
     print(f"  discover run + write_outputs   {t_ours:8.2f} s   ({ours_terms} terms kept; run {t_ours - t_write:.2f} s: "
-          f"CV, {result.config['bootstrap']['members']}-member bootstrap, ranking, bands; "
+          f"CV, {result.settings.bootstrap.members}-member bootstrap, ranking, bands; "
           f"write_outputs {t_write:.2f} s: files, figures, report)")
     print(f"  reference pysindy job          {t_ref:8.2f} s   ({ref_terms} terms kept; {N_MODELS} bagged STLSQ "
           f"models with reading the files {t_ref - t_simulate:.2f} s + simulation of each held-out run {t_simulate:.2f} s)")
@@ -202,6 +202,7 @@ def main():
     print(f"  import time (fresh process)    discover {t_import_ours:.2f} s, pysindy {t_import_ref:.2f} s; "
           f"with imports: ours {t_ours + t_import_ours:.2f} s, reference {t_ref + t_import_ref:.2f} s, "
           f"ratio {(t_ref + t_import_ref) / (t_ours + t_import_ours):.2f}")
+    print("  discover stage seconds         " + ", ".join(f"{k} {v:.2f}" for k, v in result.timings.items()))
     for name, a, b in zip(held_out, ours_fit, ref_fit):
         print(f"  held-out {name}: fit % ours {np.array2string(a, precision=1)}, "
               f"reference {np.array2string(b, precision=1)}")

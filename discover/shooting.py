@@ -6,6 +6,19 @@ integration with sensitivities (:mod:`discover.integrator`); :func:`_solve` runs
 :func:`scipy.optimize.least_squares` on it within the evaluation and time budget
 (:class:`_Budget`); :func:`_segment_starts` starts every segment from the measured
 state (a local quadratic fit, :func:`_local_fit`) or a starting trajectory.
+
+With the analytic Jacobian the steps are Levenberg–Marquardt steps on the normal
+equations (:func:`_levenberg_marquardt`; Levenberg 1944, Marquardt 1963, with the
+damping update of Nielsen 1999 as given in Madsen, Nielsen & Tingleff 2004, "Methods
+for non-linear least squares problems", IMM, DTU, §3.2, and the column scaling of
+Moré 1978). Why not ``least_squares(method="trf")`` there: it takes a thin SVD of the
+whole Jacobian at every iteration. On the end-to-end benchmark's refinement
+(40,080 residuals × 98 parameters, BLAS on one thread, 2-core machine) that SVD took
+0.51 s against 0.016 s for JᵀJ, more than the integration with sensitivities (0.19 s).
+The multiple-shooting problem is well scaled by its continuity weights and the step is
+solved on the column-scaled JᵀJ + λI by Cholesky, so squaring the condition number
+costs nothing the damping does not already bound. Finite-difference Jacobians
+(``jacobian="2-point"``, a check) still go through ``least_squares``.
 """
 
 from __future__ import annotations
@@ -14,6 +27,7 @@ import time
 
 import numpy as np
 from scipy import sparse
+from scipy.linalg import LinAlgError, cho_factor, cho_solve
 from scipy.optimize import least_squares
 
 from .integrator import _integrate
@@ -22,6 +36,17 @@ from .integrator import _integrate
 START_WINDOW = 9
 #: least_squares-like status of a fit stopped at the time limit.
 TIMED_OUT = -3
+#: Most parameters for which the normal equations (a dense n × n matrix) are formed;
+#: larger problems go to least_squares with its sparse iterative solver.
+MAX_NORMAL_PARAMS = 3000
+#: Convergence tolerances (those least_squares was given before: ftol, xtol, gtol).
+TOLERANCE = 1e-10
+#: Corrections of each Levenberg–Marquardt step from the residual of its normal equations.
+REFINEMENT_STEPS = 2
+#: Starting damping relative to the largest scaled curvature: Nielsen's choice for a start
+#: believed close to the optimum (Madsen, Nielsen & Tingleff 2004, §3.2: 1e-6 then,
+#: 1e-3 otherwise); the derivative fit is such a start.
+INITIAL_DAMPING = 1e-6
 
 
 # --------------------------------------------------------------------------- the multiple-shooting problem
@@ -181,6 +206,17 @@ class _Budget:
         self.n_jac += 1
         return self.problem.jac(p)
 
+    def fun_and_jac(self, p):
+        """Residuals and Jacobian from one integration with sensitivities."""
+        self._check()
+        self.n_fun += 1
+        self.n_jac += 1
+        r, jac, _ = self.problem.residuals_and_jacobian(p)
+        cost = 0.5 * float(r @ r)
+        if cost < self.best_cost:
+            self.best_cost, self.best_p = cost, p.copy()
+        return r, cost, jac
+
 
 def _solve(problem, jacobian, max_nfev, deadline, time_limit):
     """least_squares within the budget; returns x, status, message, nfev, njev."""
@@ -192,8 +228,12 @@ def _solve(problem, jacobian, max_nfev, deadline, time_limit):
     else:  # scipy takes a sparsity pattern only with lsmr
         jac, options = jacobian, ({} if problem.dense else {"jac_sparsity": problem.sparsity()})
     try:
-        result = least_squares(budget.fun, p0, jac=jac, method="trf", x_scale="jac", max_nfev=max_nfev,
-                               tr_solver=tr_solver, ftol=1e-10, xtol=1e-10, gtol=1e-10, **options)
+        if jacobian == "analytic" and problem.n_params <= MAX_NORMAL_PARAMS:
+            result = _levenberg_marquardt(budget.fun_and_jac, p0, max_nfev)
+        else:
+            result = least_squares(budget.fun, p0, jac=jac, method="trf", x_scale="jac", max_nfev=max_nfev,
+                                   tr_solver=tr_solver, ftol=TOLERANCE, xtol=TOLERANCE, gtol=TOLERANCE,
+                                   **options)
     except _OutOfTime:
         best = budget.best_p if budget.best_p is not None else p0
         return {"x": best, "status": TIMED_OUT, "nfev": budget.n_fun, "njev": budget.n_jac,
@@ -202,6 +242,74 @@ def _solve(problem, jacobian, max_nfev, deadline, time_limit):
         f"stopped after max_nfev = {max_nfev} evaluations" if result.status == 0 else result.message)
     return {"x": result.x, "status": result.status, "nfev": result.nfev, "njev": result.njev or 0,
             "message": message}
+
+
+class _Fit:
+    """What :func:`_solve` reads of a least-squares result."""
+
+    def __init__(self, x, status, nfev, njev, message=""):
+        self.x, self.status, self.nfev, self.njev, self.message = x, status, nfev, njev, message
+
+
+def _levenberg_marquardt(fun_and_jac, p0, max_nfev, tol=TOLERANCE):
+    """Minimise ½‖r(p)‖² from ``p0``; ``fun_and_jac(p)`` returns (r, ½‖r‖², J), J dense or sparse.
+
+    Status as least_squares: 1 gradient small (gtol), 2 cost settled (ftol), 3 step
+    small (xtol), 0 ``max_nfev`` evaluations used. Every trial point is evaluated with
+    its Jacobian: on this problem most trial steps are taken, and one integration with
+    sensitivities costs less than a plain one followed by another with them.
+    """
+    p = np.array(p0, dtype=float)
+    r, cost, jac = fun_and_jac(p)
+    nfev, scale, damping, growth = 1, None, None, 2.0
+    while True:
+        normal = jac.T @ jac
+        normal = normal.toarray() if sparse.issparse(normal) else np.asarray(normal)
+        gradient = np.asarray(jac.T @ r).ravel()
+        # Columns scaled by their norms, the largest seen so far (least_squares' x_scale="jac").
+        norms = np.sqrt(np.diag(normal))
+        scale = norms if scale is None else np.maximum(scale, norms)
+        s = np.where(scale > 0, scale, 1.0)
+        a = normal / s[:, None] / s[None, :]
+        g = gradient / s
+        if not np.isfinite(cost) or np.max(np.abs(g), initial=0.0) < tol:
+            return _Fit(p, 1, nfev, nfev)
+        if damping is None:
+            damping = INITIAL_DAMPING * max(float(np.max(np.diag(a), initial=0.0)), 1.0)
+        while True:
+            if nfev >= max_nfev:
+                return _Fit(p, 0, nfev, nfev)
+            try:
+                factor = cho_factor(a + damping * np.eye(len(g)), check_finite=False)
+            except (LinAlgError, ValueError):
+                damping, growth = damping * growth, growth * 2
+                continue
+            step = -cho_solve(factor, g, check_finite=False)
+            for _ in range(REFINEMENT_STEPS):
+                # Corrected semi-normal equations (Björck 1996, §2.2.3): the residual of the
+                # normal equations from J itself restores the accuracy JᵀJ loses.
+                misfit = -g - np.asarray(jac.T @ (jac @ (step / s))).ravel() / s - damping * step
+                step = step + cho_solve(factor, misfit, check_finite=False)
+            dp = step / s
+            predicted = 0.5 * float(step @ (damping * step - g))  # model decrease, ≥ 0
+            p_new = p + dp
+            r_new, cost_new, jac_new = fun_and_jac(p_new)
+            nfev += 1
+            gain = (cost - cost_new) / predicted if predicted > 0 and np.isfinite(cost_new) else -1.0
+            small_step = np.linalg.norm(dp) < tol * (tol + np.linalg.norm(p))
+            if gain > 0:
+                settled = cost - cost_new < tol * cost
+                p, r, cost, jac = p_new, r_new, cost_new, jac_new
+                damping *= max(1 / 3, 1 - (2 * gain - 1) ** 3)
+                growth = 2.0
+                if settled:
+                    return _Fit(p, 2, nfev, nfev)
+                if small_step:
+                    return _Fit(p, 3, nfev, nfev)
+                break
+            if small_step:
+                return _Fit(p, 3, nfev, nfev)
+            damping, growth = damping * growth, growth * 2
 
 
 def _local_fit(t, x, at):
