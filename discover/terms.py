@@ -218,8 +218,13 @@ class TermEvaluator:
     """Evaluate a fixed list of terms at a few points, fast (the simulation hot path).
 
     Monomials (products of integer powers of the variables, the constant included)
-    become one exponent matrix, evaluated for all of them in one numpy expression;
-    any other term is evaluated through its parsed expression.
+    become one exponent matrix, evaluated for all of them in one numpy expression: a
+    table of every variable's powers by repeated multiplication, gathered by the
+    exponent matrix and multiplied along the variables. (Elementwise ``z ** powers``
+    did the same with a float power per entry: 13 times slower for 39 points of a
+    degree-3 library in 5 variables, 460 µs against 34 µs on the 2-core machine, and
+    the simulations of the ranking call this once per solver step.) Any other term is
+    evaluated through its parsed expression.
 
     Parameters
     ----------
@@ -250,7 +255,15 @@ class TermEvaluator:
         """Θ of shape (n_points, n_terms) from z of shape (n_points, n_variables)."""
         theta = np.empty((len(z), self.n_terms))
         if len(self.monomial):
-            theta[:, self.monomial] = np.prod(z[:, None, :] ** self.powers[None, :, :], axis=2)
+            top = int(self.powers.max()) if self.powers.size else 0
+            table = np.empty((top + 1,) + z.shape)  # table[p] = z**p
+            table[0] = 1.0
+            if top:
+                table[1] = z
+            for p in range(2, top + 1):
+                table[p] = table[p - 1] * z
+            picked = table[self.powers, :, np.arange(z.shape[1])]  # (n_monomials, n_variables, n_points)
+            theta[:, self.monomial] = np.prod(picked, axis=1).T
         if self.other:
             columns = {name: z[:, i] for i, name in enumerate(self.names)}
             for j, expression in self.other:
