@@ -46,6 +46,8 @@ class Run:
         SHA-256 of the file's bytes, taken from the same bytes that were parsed.
     time_note : str
         How the time column was read when it was not plain numbers (date-times).
+    columns : tuple of str
+        Every column name of the file (after renaming), read or not.
     """
 
     name: str
@@ -56,6 +58,7 @@ class Run:
     touched: int = 0
     sha256: str = ""
     time_note: str = ""
+    columns: tuple = ()
     #: For a run read in chunks: its full length and the exact extremes of x and u
     #: (t, x, u then hold only evenly spaced samples, for plots).
     n_total: int | None = None
@@ -324,6 +327,7 @@ def load_run(path, *, time, states, inputs, rename, missing, max_gap):
         touched=touched,
         sha256=digest,
         time_note=time_note,
+        columns=tuple(str(c) for c in frame.columns),
     )
 
 

@@ -64,6 +64,17 @@ def state_extent(trajectories):
     return low, high
 
 
+def unused_hidden_columns(hidden, runs):
+    """A warning for each hidden state that a file has a column for: that column is not read."""
+    notes = []
+    for name in hidden:
+        files = [run.source for run in runs if name in run.columns]
+        if files:
+            notes.append(f"Column {name!r} in {', '.join(files)} is not used: {name!r} is declared hidden "
+                         "([hidden].states). List it in [data].states to fit it as a measured state.")
+    return notes
+
+
 def run_hidden(settings, *, progress=False):
     """Run a config with hidden states; return a :class:`HiddenResult` (nothing is written)."""
     clock, last = {}, time.perf_counter()
@@ -105,6 +116,7 @@ def run_hidden(settings, *, progress=False):
     done("estimation")
     warnings = list(settings.notes) + data_warnings(training, held_out) + list(fit.notes) + list(estimates.notes)
     warnings.append(NOT_RUN)
+    warnings += unused_hidden_columns(spec.hidden, list(training.runs) + list(held_out.runs))
     if not held_out.runs:
         warnings.append("No run is held out: the model is not validated on unseen data.")
     return HiddenResult(settings, model, spec, training, held_out, fit, estimates, simulation, tuple(warnings),

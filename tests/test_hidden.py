@@ -202,3 +202,15 @@ def test_simulate_command_refuses_a_model_with_hidden_states(fixed, rlc_folder, 
     with pytest.raises(ModelFileError, match="hidden states \\(i\\)") as info:
         replay_file(tmp_path / "model.json", rlc_folder / "run_2.csv")
     assert "\n" not in str(info.value) and "estimate_states" in str(info.value)
+
+
+def test_column_named_like_a_hidden_state_is_reported_not_silently_dropped(rlc_folder, tmp_path):
+    # A logged current column beside a config that declares i hidden: the column is not read,
+    # and the warnings say so with the file (common practice: never drop a user's data silently).
+    for path in rlc_folder.glob("*.csv"):
+        frame = pd.read_csv(path)
+        frame["i"] = truth(path.stem)[1][:, 1]
+        frame.to_csv(tmp_path / path.name, index=False)
+    result = discover.run(rlc_config(tmp_path, known={"v_C": {"i": 1.0 / C_FARAD}}, estimate=False))
+    notes = [w for w in result.warnings if "'i'" in w and "not used" in w]
+    assert len(notes) == 1 and "run_0.csv" in notes[0] and "[data].states" in notes[0]
