@@ -1,5 +1,5 @@
-"""Time the bootstrap ensemble on a demo: members' fits against one fit, and the
-vectorised simulation of all members against one solver call per member.
+"""Time the bootstrap ensemble on a demo: its stage against the threshold cross-validation,
+and the vectorised simulation of all members against one solver call per member.
 
 Run: python benchmarks/ensemble.py [configs/bioreactor.toml]
 Both paths run in this process on the same data; the script prints times and ratios.
@@ -12,13 +12,8 @@ import numpy as np
 
 import discover
 from discover import bootstrap
-from discover.config import load_config, threshold_grid
-from discover.data import load_dataset
-from discover.selection import fit_scaled
 from discover.expressions import parse_expression
 from discover.model import Model
-from discover.pipeline import (differentiate, library_from_config, regression_blocks, run_ensemble,
-                               select_model)
 
 
 def timed(fn, repeat=3):
@@ -31,30 +26,10 @@ def timed(fn, repeat=3):
 
 
 def main(path):
-    config = load_config(path)
-    training, _ = load_dataset(config)
-    library = library_from_config(config)
-    smoothed = differentiate(training, config)
-    correlation = int(np.median([bootstrap.correlation_length(r.x_dot) for r in smoothed]))
-    sub_length, block_length = bootstrap.block_plan([len(r.t) for r in smoothed], correlation, None)
-    blocks, pieces = regression_blocks(smoothed, library, sub_length, config["selection"]["cv_folds"])
-    sel = config["selection"]
-    total, count = blocks.total()
-
-    def single_fit():
-        return fit_scaled(total, count, len(library), threshold=thresholds, ridge=sel["ridge"],
-                          max_iter=sel["max_iter"])
-
-    t_cv, (_, thresholds, *_rest) = timed(lambda: select_model(config, blocks, library))
-    t_single, _ = timed(single_fit)
-    t_ensemble, ensemble = timed(lambda: run_ensemble(config, blocks, pieces, library, thresholds,
-                                                      block_length, False))
-    n = config["bootstrap"]["members"]
-    print(f"{path}: {len(library)} terms, {count} rows. One sparse fit {1e3 * t_single:.2f} ms; "
-          f"threshold CV ({len(threshold_grid(sel))} thresholds x {sel['cv_folds']} folds) "
-          f"{1e3 * t_cv:.1f} ms; {n}-member ensemble {1e3 * t_ensemble:.1f} ms "
-          f"= {t_ensemble / t_single:.0f} single fits")
     result = discover.run(path)
+    n = result.settings.bootstrap.members
+    print(f"{path}: {len(result.library_terms)} terms; stage seconds: selection (threshold CV) "
+          f"{result.timings['selection']:.3f} s, {n}-member ensemble {result.timings['ensemble']:.3f} s")
 
     ens, model = result.ensemble, result.model
     run = result.held_out.runs[0] if result.held_out.runs else result.training.runs[0]
